@@ -1,0 +1,21 @@
+"""Every streaming detector by its configuration key.
+
+The watcher builds a characteristic's detector set from this table; the
+contract test in ``tests/rules/test_detector_contract.py`` runs over all of it.
+"""
+
+from __future__ import annotations
+
+from rules.detector import StreamDetector
+
+DETECTORS: dict[str, type[StreamDetector]] = {}
+
+
+def register(cls: type[StreamDetector]) -> type[StreamDetector]:
+    """Class decorator: add a detector to the table under its ``key``."""
+    if not cls.key:
+        raise ValueError(f"{cls.__name__} has no key")
+    if cls.key in DETECTORS and DETECTORS[cls.key] is not cls:
+        raise ValueError(f"detector key {cls.key!r} is taken by {DETECTORS[cls.key].__name__}")
+    DETECTORS[cls.key] = cls
+    return cls

@@ -1,0 +1,260 @@
+"""One characteristic's watch: learn the baseline, then run every enabled detector on each reading.
+
+A ``Monitor`` takes readings of one characteristic in arrival order and returns
+findings.  Its whole state exports as plain data, so the daemon commits it in
+the same transaction as the file offsets that produced it.
+"""
+
+from __future__ import annotations
+
+import base64
+import math
+from array import array
+from collections import deque
+from typing import Any
+
+from rules import DETECTORS, StreamDetector
+from watcher.config import CharacteristicConfig
+from watcher.detector_set import resolve_detectors
+from watcher.messages import finding_message
+from watcher.records import Finding
+
+STATE_VERSION = 1
+
+
+def _pack(values: list[float]) -> str:
+    return base64.b64encode(array("d", values).tobytes()).decode()
+
+
+def _unpack(text: str) -> list[float]:
+    a = array("d")
+    a.frombytes(base64.b64decode(text))
+    return a.tolist()
+
+
+class Monitor:
+    """Baseline, detectors and recent history of one characteristic.
+
+    ``feed(value, time)`` returns the findings that reading raised (possibly none).
+    Index 0 is the first reading this characteristic ever received.
+    """
+
+    def __init__(self, cc: CharacteristicConfig, source: str, detectors: dict[str, dict[str, Any]] | None = None):
+        self.cc = cc
+        self.source = source
+        self.spec = detectors if detectors is not None else resolve_detectors(cc)
+        self.count = 0
+        self.baseline: Any = None  # a rules.baseline.Baseline once learnt
+        self.baseline_values: list[float] = []
+        self.baseline_times: list[str | None] = []
+        self.watch_start = 0  # index of the first reading the detectors saw
+        self.detectors: dict[str, StreamDetector] = {}
+        keep = max([self.cc.window] + [int(p.get("window", 0)) for p in self.spec.values()]) * 4
+        self.keep = max(200, min(keep, 2000))
+        self.recent_values: deque[float] = deque(maxlen=self.keep)
+        self.recent_times: deque[str | None] = deque(maxlen=self.keep)
+        self.last_time: str | None = None
+        self.last_value: float | None = None
+        self.warnings: list[str] = []
+        self._lambda: float | None = None
+        self.raw_centre: float | None = None
+        self.raw_sigma: float | None = None
+        if cc.baseline.fixed:
+            self._set_baseline(_fixed_baseline(cc.baseline.mean, cc.baseline.sigma))
+
+    # -- the reading path ------------------------------------------------------------------
+    def feed(self, value: float, time: str | None = None) -> list[Finding]:
+        i = self.count
+        self.count += 1
+        self.recent_values.append(value)
+        self.recent_times.append(time)
+        self.last_time, self.last_value = time, value
+        out: list[Finding] = []
+        spec = self._spec_finding(i, value, time)
+        if spec is not None:
+            out.append(spec)
+        if self.baseline is None:
+            self.baseline_values.append(value)
+            self.baseline_times.append(time)
+            if len(self.baseline_values) >= self.cc.baseline.readings:
+                self._learn_baseline()
+            return out
+        if not self.detectors:
+            return out
+        z = self._standardise(value)
+        for key, det in self.detectors.items():
+            sig = det.update(z if det.needs_reference else self._transformed(value))
+            if sig is not None:
+                out.append(self._finding(key, sig, i, value, time))
+        return out
+
+    # -- baseline ----------------------------------------------------------------------------
+    def _learn_baseline(self) -> None:
+        from rules.baseline import estimate_baseline
+
+        raw = self.baseline_values
+        b = estimate_baseline(raw)
+        self.baseline_values, self.baseline_times = [], []
+        self._set_baseline(b, raw)
+
+    def _set_baseline(self, b: Any, raw: list[float] | None = None) -> None:
+        self.baseline = b
+        self._lambda = (b.transform or {}).get("boxcox") if b is not None else None
+        if raw is not None:  # sizes are told in the unit, so keep the centre and sigma of the raw readings too
+            self.raw_centre = sum(raw) / len(raw)
+            mr = [abs(a - c) for a, c in zip(raw[1:], raw[:-1])]
+            self.raw_sigma = (sum(mr) / len(mr)) / 1.128 if mr else b.sigma
+        elif self._lambda is None:
+            self.raw_centre, self.raw_sigma = b.centre, b.sigma
+        self.watch_start = self.count
+        self.warnings = list(b.warnings)
+        self.detectors = {}
+        if b.no_spread:
+            return  # never divide by a zero sigma; check, status and alerts report it
+        distribution_free = b.distribution_free_only
+        for key, params in self.spec.items():
+            cls = DETECTORS[key]
+            if distribution_free and cls.needs_reference:
+                continue
+            self.detectors[key] = cls(**params)
+
+    def rebaseline(self) -> None:
+        """Forget the baseline and learn a new one from the next readings."""
+        self.baseline = None
+        self.detectors = {}
+        self.baseline_values, self.baseline_times = [], []
+
+    def _transformed(self, x: float) -> float:
+        """The reading on the monitored scale: Box-Cox (Box and Cox 1964) where the baseline chose it."""
+        lam = self._lambda
+        if lam is None:
+            return x
+        if x <= 0:  # outside the transform's domain: treat as far below any positive reading
+            return -1e300
+        return math.log(x) if lam == 0 else (x**lam - 1.0) / lam
+
+    def _standardise(self, x: float) -> float:
+        b = self.baseline
+        return (self._transformed(x) - b.centre) / b.sigma
+
+    # -- findings ----------------------------------------------------------------------------
+    def _spec_finding(self, i: int, value: float, time: str | None) -> Finding | None:
+        cc = self.cc
+        if cc.usl is not None and value > cc.usl:
+            direction, limit, name = "up", cc.usl, "upper"
+        elif cc.lsl is not None and value < cc.lsl:
+            direction, limit, name = "down", cc.lsl, "lower"
+        else:
+            return None
+        size = value - limit
+        msg = (
+            f"{cc.name} read {value:g}{_u(cc.unit)}, beyond the {name} specification limit {limit:g}{_u(cc.unit)}."
+        )
+        return Finding(cc.name, "out_of_spec", "specification limit", None, i, time, i, time, direction,
+                       size, msg, self.source, value, None, {"limit": limit})
+
+    def _finding(self, key: str, sig: Any, i: int, value: float, time: str | None) -> Finding:
+        onset = None if sig.onset_index is None else self.watch_start + sig.onset_index
+        onset_time = self._time_at(onset)
+        size = self._size_since(onset, sig, DETECTORS[key].needs_reference)
+        b = self.baseline
+        detail = dict(sig.detail)
+        detail["detector_key"] = key
+        if sig.size is not None:
+            detail["size_detector_units"] = sig.size
+        if size is not None and self.raw_sigma:
+            detail["size_sigma"] = size / self.raw_sigma
+        f = Finding(
+            characteristic=self.cc.name, pattern=sig.pattern, detector=sig.detector,
+            p_value=None if sig.p_value is None else float(sig.p_value), index=i, time=time,
+            onset_index=onset, onset_time=onset_time, direction=sig.direction, size=size,
+            message="", source=self.source, value=value, statistic=sig.statistic, detail=detail,
+        )
+        return _with_message(f, self.cc)
+
+    def _time_at(self, index: int | None) -> str | None:
+        if index is None:
+            return None
+        back = self.count - 1 - index
+        if 0 <= back < len(self.recent_times):
+            return self.recent_times[-1 - back]
+        return None
+
+    def _size_since(self, onset: int | None, sig: Any, sigma_units: bool) -> float | None:
+        """Mean of the readings since onset minus the baseline mean, in the characteristic's unit."""
+        b = self.baseline
+        if sig.pattern not in ("shift", "drift", "spike") or b is None:
+            return None
+        if onset is not None:
+            n = self.count - onset
+            if 0 < n <= len(self.recent_values):
+                vals = list(self.recent_values)[-n:]
+                return sum(vals) / n - self.raw_centre
+        if sig.size is not None and sig.pattern != "drift":
+            return sig.size * self.raw_sigma if sigma_units else sig.size
+        return None
+
+    # -- state -------------------------------------------------------------------------------------
+    def export_state(self) -> dict[str, Any]:
+        return {
+            "version": STATE_VERSION,
+            "count": self.count,
+            "watch_start": self.watch_start,
+            "baseline": None if self.baseline is None else self.baseline.to_dict(),
+            "raw_centre": self.raw_centre,
+            "raw_sigma": self.raw_sigma,
+            "baseline_values": _pack(self.baseline_values),
+            "baseline_times": self.baseline_times,
+            "detectors": {k: d.export_state() for k, d in self.detectors.items()},
+            "recent_values": _pack(list(self.recent_values)),
+            "recent_times": list(self.recent_times),
+            "last_time": self.last_time,
+            "last_value": self.last_value,
+        }
+
+    @classmethod
+    def from_state(cls, cc: CharacteristicConfig, source: str, state: dict[str, Any],
+                   detectors: dict[str, dict[str, Any]] | None = None) -> "Monitor":
+        from rules.baseline import Baseline
+
+        m = cls(cc, source, detectors)
+        if state.get("version") != STATE_VERSION:
+            raise ValueError(f"monitor state version {state.get('version')!r} is not supported")
+        m.count = state["count"]
+        m.baseline_values = _unpack(state["baseline_values"])
+        m.baseline_times = list(state["baseline_times"])
+        m.recent_values.extend(_unpack(state["recent_values"]))
+        m.recent_times.extend(state["recent_times"])
+        m.last_time, m.last_value = state["last_time"], state["last_value"]
+        if state["baseline"] is not None:
+            m.baseline = Baseline.from_dict(state["baseline"])
+            m._lambda = (m.baseline.transform or {}).get("boxcox")
+            m.raw_centre, m.raw_sigma = state["raw_centre"], state["raw_sigma"]
+            m.warnings = list(m.baseline.warnings)
+            m.watch_start = state["watch_start"]
+            saved = state["detectors"]
+            if set(saved) == set(m.spec) and all(saved[k]["params"] == m._expected_params(k) for k in saved):
+                m.detectors = {k: DETECTORS[k].from_state(v) for k, v in saved.items()}
+            else:
+                # The configuration changed: keep the baseline, start the detectors afresh.
+                m._set_baseline(m.baseline)
+        return m
+
+    def _expected_params(self, key: str) -> dict[str, Any]:
+        return DETECTORS[key](**self.spec[key]).params()
+
+
+def _fixed_baseline(mean: float, sigma: float) -> Any:
+    from rules.baseline import fixed_baseline
+
+    return fixed_baseline(mean, sigma)
+
+
+def _u(unit: str) -> str:
+    return f" {unit}" if unit else ""
+
+
+def _with_message(f: Finding, cc: CharacteristicConfig) -> Finding:
+    from dataclasses import replace
+
+    return replace(f, message=finding_message(f, cc.unit))
