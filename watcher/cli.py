@@ -36,19 +36,35 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--baseline", type=int, help="readings that form the baseline (default 100)")
     r.add_argument("--state", help="also log the findings into this state folder (SQLite and findings.jsonl)")
     r.add_argument("--json", action="store_true", help="one JSON object per finding on stdout, nothing else")
+    u = sub.add_parser("run", help="watch the configured sources until stopped (SIGINT or SIGTERM)")
+    u.add_argument("config")
+    u.add_argument("--stdin", metavar="NAME", help="read the lines of source NAME from standard input")
+    u.add_argument("--log-format", choices=("plain", "json"), default="plain", help="log lines on stderr")
+
+    s = sub.add_parser("status", help="what has been read and found so far (works while the watcher runs)")
+    s.add_argument("config")
+    s.add_argument("--json", action="store_true", help="one JSON object on stdout")
     return p
+
+
+def _load(path: str):
+    """The configuration, or None after printing every problem."""
+    from watcher.config import ConfigError, load_config
+
+    try:
+        return load_config(path)
+    except ConfigError as e:
+        for line in e.problems:
+            print(line, file=sys.stderr)
+        return None
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
     from watcher.check import check_report
-    from watcher.config import ConfigError, load_config
 
-    try:
-        cfg = load_config(args.config)
-    except ConfigError as e:
-        for line in e.problems:
-            print(line, file=sys.stderr)
-        print(f"{args.config}: invalid ({len(e.problems)} problem{'s' if len(e.problems) != 1 else ''})", file=sys.stderr)
+    cfg = _load(args.config)
+    if cfg is None:
+        print(f"{args.config}: invalid", file=sys.stderr)
         return EXIT_BAD_INPUT
     report = check_report(cfg)
     if args.json:
@@ -61,7 +77,6 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _cmd_replay(args: argparse.Namespace) -> int:
-    from watcher.config import ConfigError, load_config
     from watcher.log import setup_logging
     from watcher.replay import UnusableInput, config_for_file, format_table, replay_file
 
@@ -69,11 +84,8 @@ def _cmd_replay(args: argparse.Namespace) -> int:
     path = Path(args.file)
     cfg = None
     if args.config:
-        try:
-            cfg = load_config(args.config)
-        except ConfigError as e:
-            for line in e.problems:
-                print(line, file=sys.stderr)
+        cfg = _load(args.config)
+        if cfg is None:
             return EXIT_BAD_INPUT
     if args.baseline is not None and args.baseline < 20:
         print(f"--baseline: expected at least 20 readings, got {args.baseline}", file=sys.stderr)
@@ -107,7 +119,41 @@ def _cmd_replay(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-_COMMANDS = {"check": _cmd_check, "replay": _cmd_replay}
+def _cmd_run(args: argparse.Namespace) -> int:
+    from watcher.daemon import AlreadyRunning, Daemon
+    from watcher.log import setup_logging
+
+    setup_logging(args.log_format)
+    cfg = _load(args.config)
+    if cfg is None:
+        print(f"{args.config}: not started: the configuration is invalid", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    if args.stdin and all(s.name != args.stdin for s in cfg.sources):
+        print(f"--stdin: no source named {args.stdin!r} in {args.config}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    try:
+        return Daemon(cfg, stdin=args.stdin).run()
+    except AlreadyRunning as e:
+        print(f"not started: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+
+
+def _cmd_status(args: argparse.Namespace) -> int:
+    from watcher.status import format_status, read_status
+
+    cfg = _load(args.config)
+    if cfg is None:
+        return EXIT_BAD_INPUT
+    try:
+        st = read_status(cfg)
+    except FileNotFoundError as e:
+        print(str(e), file=sys.stderr)
+        return EXIT_BAD_INPUT
+    print(json.dumps(st, indent=2, default=str) if args.json else format_status(st))
+    return EXIT_OK
+
+
+_COMMANDS = {"check": _cmd_check, "replay": _cmd_replay, "run": _cmd_run, "status": _cmd_status}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -64,7 +64,7 @@ class LineParser:
     """Parse the lines of one file (or one stream) of a source.
 
     ``columns`` are the value columns to take; ``time_column`` is optional.
-    For CSV, the first line handed in is taken as the header.
+    For CSV, line 1 of a file is its header (a line without a number, when no header is known yet).
     """
 
     def __init__(
@@ -137,7 +137,8 @@ class LineParser:
 
     def _parse_csv(self, text: str, data: bytes, line_no: int | None, offset: int | None):
         fields = [f.strip() for f in self._split(text)]
-        if self.header is None:
+        if line_no == 1 or (line_no is None and self.header is None):
+            # The first line of every file is its header (a rotated or truncated file starts again at line 1).
             self.set_header(fields)
             missing = [c.column for c in self.columns if c.column not in self._index]
             if self.time_column and self.time_column not in self._index:
@@ -145,6 +146,8 @@ class LineParser:
             if missing:
                 return [], self._bad(data, line_no, offset, f"header lacks column(s) {', '.join(missing)}")
             return [], None
+        if self.header is None:
+            return [], self._bad(data, line_no, offset, "no header known for this file (its first line was never read)")
         if len(fields) != len(self.header):
             if _is_other_header(fields, self.header, self.decimal):
                 return [], self._new_header(fields, data, line_no, offset)

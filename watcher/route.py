@@ -11,6 +11,7 @@ findings, quarantine) in one transaction.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from datetime import datetime
 from typing import Any, Iterable, Protocol
 
 from watcher.config import Config, SourceConfig
@@ -33,12 +34,17 @@ class Batch:
     quarantined: list[Quarantined] = field(default_factory=list)
     touched: set[str] = field(default_factory=set)  # characteristics that took readings
     per_file: dict[str, list[int]] = field(default_factory=dict)  # path -> [lines, quarantined]
+    values: dict[str, list[tuple[float, str | None]]] = field(default_factory=dict)  # for the digest's aggregates
+    backwards: list[tuple[str, str, str]] = field(default_factory=list)  # (characteristic, time, previous time)
 
     def merge(self, other: "Batch") -> None:
         self.readings += other.readings
         self.findings += other.findings
         self.quarantined += other.quarantined
         self.touched |= other.touched
+        for k, v in other.values.items():
+            self.values.setdefault(k, []).extend(v)
+        self.backwards += other.backwards
         for k, (a, b) in other.per_file.items():
             cur = self.per_file.setdefault(k, [0, 0])
             cur[0] += a
@@ -69,10 +75,6 @@ class Route:
             self.parsers[key] = p
         return p
 
-    def forget_file(self, source: str, path: str) -> None:
-        """A file was truncated or replaced: its next first line is a header again."""
-        self.parsers.pop((source, path), None)
-
     def take(self, src: SourceConfig, lines: Iterable[RawLineLike]) -> Batch:
         b = Batch()
         for raw in lines:
@@ -86,7 +88,18 @@ class Route:
                 continue
             for r in readings:
                 m = self.monitors[r.characteristic]
+                if r.time is not None and m.last_time is not None and _earlier(r.time, m.last_time):
+                    b.backwards.append((r.characteristic, r.time, m.last_time))
                 b.findings.extend(m.feed(r.value, r.time))
                 b.readings += 1
                 b.touched.add(r.characteristic)
+                b.values.setdefault(r.characteristic, []).append((r.value, r.time))
         return b
+
+
+def _earlier(a: str, b: str) -> bool:
+    """Is time a before time b?  Readings are taken in arrival order either way; this only flags it."""
+    try:
+        return datetime.fromisoformat(a) < datetime.fromisoformat(b)
+    except (TypeError, ValueError):  # naive against aware: cannot tell
+        return False

@@ -91,6 +91,10 @@ class Store:
             if not self.path.exists():
                 raise FileNotFoundError(f"{self.path}: no state database here yet (has linewatch run with this config?)")
             self.conn = sqlite3.connect(f"file:{self.path}?mode=ro", uri=True, timeout=10, check_same_thread=False)
+            ready = self.conn.execute("SELECT 1 FROM sqlite_master WHERE name = 'characteristic_state'").fetchone()
+            if not ready:
+                self.conn.close()
+                raise FileNotFoundError(f"{self.path}: the state database is not set up yet (linewatch is starting?)")
         else:
             self.conn = sqlite3.connect(self.path, timeout=30, isolation_level=None, check_same_thread=False)
             os.chmod(self.path, 0o600)

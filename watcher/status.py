@@ -1,0 +1,91 @@
+"""``linewatch status``: what has been read and found, from the state database (read-only)."""
+
+from __future__ import annotations
+
+import json
+from typing import Any
+
+from watcher.config import Config
+from watcher.store import Store
+
+
+def read_status(cfg: Config) -> dict[str, Any]:
+    """Plain data: per characteristic and per source, straight from the store."""
+    store = Store(cfg.state_dir, readonly=True)
+    try:
+        c = store.conn
+        chars: dict[str, Any] = {}
+        rows = {r["characteristic"]: r for r in c.execute("SELECT * FROM characteristic_state")}
+        counts = {r[0]: r[1] for r in c.execute("SELECT characteristic, count(*) FROM findings GROUP BY characteristic")}
+        open_eps = _open_episodes(c)
+        for cc in cfg.characteristics:
+            r = rows.get(cc.name)
+            state = json.loads(r["state"]) if r else None
+            baseline = (state or {}).get("baseline")
+            if r is None:
+                phase = "no readings yet"
+            elif baseline is None:
+                phase = f"learning baseline ({r['readings']} of {cc.baseline.readings} readings)"
+            elif baseline.get("no_spread"):
+                phase = f"no spread in the baseline: {baseline.get('no_spread_reason') or 'every reading equal'}"
+            else:
+                phase = "watching"
+            chars[cc.name] = {
+                "source": cc.source,
+                "readings": r["readings"] if r else 0,
+                "last_time": r["last_time"] if r else None,
+                "last_value": r["last_value"] if r else None,
+                "phase": phase,
+                "baseline": None if baseline is None else {
+                    k: baseline.get(k) for k in ("centre", "sigma", "n", "transform", "distribution_free_only", "no_spread")
+                },
+                "warnings": list((baseline or {}).get("warnings") or []),
+                "findings": counts.get(cc.name, 0),
+                "open_episodes": open_eps.get(cc.name, []),
+            }
+        sources: dict[str, Any] = {}
+        for s in cfg.sources:
+            files = {}
+            for r in c.execute("SELECT path, checkpoint, lines, quarantined, updated_at FROM files WHERE source = ?", (s.name,)):
+                ck = json.loads(r["checkpoint"])
+                files[r["path"]] = {"offset": ck.get("offset"), "lines": r["lines"], "quarantined": r["quarantined"],
+                                    "updated_at": r["updated_at"]}
+            reasons = {r[0]: r[1] for r in c.execute(
+                "SELECT reason, count(*) FROM quarantine WHERE source = ? GROUP BY reason ORDER BY 2 DESC", (s.name,))}
+            sources[s.name] = {"kind": s.kind, "path": s.path, "files": files, "quarantined_by_reason": reasons}
+        return {"state": str(cfg.state_dir), "characteristics": chars, "sources": sources}
+    finally:
+        store.close()
+
+
+def _open_episodes(c: Any) -> dict[str, list[dict[str, Any]]]:
+    """Open episodes per characteristic, where the episodes table exists."""
+    try:
+        rows = c.execute("SELECT * FROM episodes WHERE state != 'closed' ORDER BY id").fetchall()
+    except Exception:  # no episodes table yet (alerting not set up in this state folder)
+        return {}
+    out: dict[str, list[dict[str, Any]]] = {}
+    for r in rows:
+        d = dict(r)
+        out.setdefault(d.get("characteristic"), []).append(
+            {k: d.get(k) for k in ("id", "pattern", "state", "onset_time", "min_p_value", "direction") if k in d})
+    return out
+
+
+def format_status(st: dict[str, Any]) -> str:
+    lines = [f"state: {st['state']}", ""]
+    for name, c in st["characteristics"].items():
+        last = f", last at {c['last_time']}" if c["last_time"] else ""
+        lines.append(f"{name}: {c['readings']} readings{last}; {c['phase']}; {c['findings']} findings")
+        for w in c["warnings"]:
+            lines.append(f"  warning: {w}")
+        for e in c["open_episodes"]:
+            lines.append(f"  open episode {e.get('id')}: {e.get('pattern')} ({e.get('state')})")
+    lines.append("")
+    for name, s in st["sources"].items():
+        lines.append(f"source {name} ({s['kind']}):")
+        for path, f in s["files"].items():
+            lines.append(f"  {path}: offset {f['offset']}, {f['lines']} lines, {f['quarantined']} quarantined")
+        for reason, n in s["quarantined_by_reason"].items():
+            lines.append(f"  quarantined: {n} x {reason}")
+    return "\n".join(lines)
