@@ -106,7 +106,9 @@ class _Feed:
                 events.extend(evs)
             return lines, events
         if self.kind == "stdin":
-            return [ln for ln in self.reader.drain() if ln.terminated or self.reader.eof], []
+            # An unterminated piece is a line longer than the reader's limit, or the end of the stream:
+            # it goes to the parser like any line and is quarantined if it makes no sense.
+            return self.reader.drain(), []
         msgs = self.reader.drain()
         return [_Line(m.path, m.seq, None, m.payload) for m in msgs], []
 

@@ -181,16 +181,25 @@ class Monitor:
         return None
 
     def _size_since(self, onset: int | None, sig: Any, sigma_units: bool) -> float | None:
-        """Mean of the readings since onset minus the baseline mean, in the characteristic's unit."""
+        """The change in the characteristic's unit.
+
+        Shift and spike: mean of the readings since onset minus the baseline mean.
+        Drift: the change across the detector's window (its own estimate).
+        """
         b = self.baseline
         if sig.pattern not in ("shift", "drift", "spike") or b is None:
             return None
+        if sig.pattern == "drift":
+            # A drift's size is the change the detector measured across its window (e.g. Sen's slope x span).
+            if sig.size is None or self._lambda is not None:
+                return None
+            return sig.size * self.raw_sigma if sigma_units else sig.size
         if onset is not None:
             n = self.count - onset
             if 0 < n <= len(self.recent_values):
                 vals = list(self.recent_values)[-n:]
                 return sum(vals) / n - self.raw_centre
-        if sig.size is not None and sig.pattern != "drift":
+        if sig.size is not None:
             return sig.size * self.raw_sigma if sigma_units else sig.size
         return None
 

@@ -244,3 +244,61 @@ def test_crash_at_random_instants_loses_and_repeats_nothing(tmp_path):
     assert live == once
     jsonl = [json.loads(x) for x in (cfg.state_dir / "findings.jsonl").read_text().splitlines()]
     assert [(j["pattern"], j["index"]) for j in jsonl] == [(p, i) for p, _, i, _, _ in once]
+
+
+def _free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+MOSQUITTO = next((p for p in ("/usr/sbin/mosquitto", "/usr/bin/mosquitto") if os.path.exists(p)), None)
+
+
+@pytest.mark.skipif(MOSQUITTO is None, reason="the mosquitto broker is not installed (Debian package mosquitto)")
+def test_mqtt_source_through_the_daemon(tmp_path):
+    import paho.mqtt.client as mqtt
+    from paho.mqtt.enums import CallbackAPIVersion
+
+    port = _free_port()
+    broker = subprocess.Popen([MOSQUITTO, "-p", str(port)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    try:
+        cfgp = tmp_path / "cfg.yaml"
+        cfgp.write_text(
+            "state: ./st\nsources:\n"
+            f"  - {{name: oven, kind: mqtt, broker: 'mqtt://127.0.0.1:{port}', topic: line3/oven, format: jsonl, time_column: t}}\n"
+            "characteristics:\n  - {name: zone_temp, source: oven, column: temp_c, baseline: {readings: 40}}\n"
+        )
+        with Running(cfgp) as r:
+            r.cfg.characteristics[0]  # noqa: B018 - the config parsed
+            pub = mqtt.Client(CallbackAPIVersion.VERSION2)
+            for _ in range(50):
+                try:
+                    pub.connect("127.0.0.1", port)
+                    break
+                except OSError:
+                    time.sleep(0.1)
+            pub.loop_start()
+            time.sleep(1.0)  # let the daemon's subscription land
+            vals = 180 + np.random.default_rng(2).normal(size=60)
+            for i, v in enumerate(vals):
+                payload = json.dumps({"t": 1767337200 + i, "temp_c": round(float(v), 3)}) if i % 2 else f"{v:.3f}"
+                pub.publish("line3/oven", payload, qos=1).wait_for_publish(5)
+            pub.publish("line3/oven", "not json", qos=1).wait_for_publish(5)
+            t0 = time.time()
+            while time.time() - t0 < 10:
+                try:
+                    if read_status(r.cfg)["characteristics"]["zone_temp"]["readings"] >= 60:
+                        break
+                except FileNotFoundError:
+                    pass
+                time.sleep(0.1)
+            pub.loop_stop()
+        st = read_status(r.cfg)
+        assert st["characteristics"]["zone_temp"]["readings"] == 60
+        assert sum(st["sources"]["oven"]["quarantined_by_reason"].values()) == 1
+    finally:
+        broker.terminate()
+        broker.wait(5)
