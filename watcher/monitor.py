@@ -13,6 +13,8 @@ from array import array
 from collections import deque
 from typing import Any
 
+import numpy as np
+
 from rules import DETECTORS, StreamDetector
 from watcher.config import CharacteristicConfig
 from watcher.detector_set import resolve_detectors
@@ -53,6 +55,7 @@ class Monitor:
         self.keep = max(200, min(keep, 2000))
         self.recent_values: deque[float] = deque(maxlen=self.keep)
         self.recent_times: deque[str | None] = deque(maxlen=self.keep)
+        self._live = _DequeHistory(self)
         self.last_time: str | None = None
         self.last_value: float | None = None
         self.warnings: list[str] = []
@@ -85,8 +88,59 @@ class Monitor:
         for key, det in self.detectors.items():
             sig = det.update(z if det.needs_reference else self._transformed(value))
             if sig is not None:
-                out.append(self._finding(key, sig, i, value, time))
+                out.append(self._finding(key, sig, i, value, time, self._live))
         return out
+
+    def scan_all(self, values: Any, times: list[str | None] | None = None) -> list[Finding]:
+        """All findings of a whole series on a fresh monitor, vectorised (the replay path).
+
+        Gives exactly the findings that ``feed`` would give one reading at a time: the
+        detectors' ``scan`` equals their streaming loop, and the look-back for onset
+        times and sizes is bounded exactly as the live deques are.  The monitor is
+        spent afterwards (its detectors did not keep state).
+        """
+        if self.count:
+            raise ValueError("scan_all needs a fresh monitor")
+        x = np.asarray(values, dtype=float)
+        n = len(x)
+        hist = _ArrayHistory(x, times, self.keep)
+        ranked: list[tuple[int, int, Finding]] = []
+        limits = np.zeros(n, dtype=bool)
+        if self.cc.usl is not None:
+            limits |= x > self.cc.usl
+        if self.cc.lsl is not None:
+            limits |= x < self.cc.lsl
+        for i in np.flatnonzero(limits).tolist():
+            f = self._spec_finding(i, float(x[i]), None if times is None else times[i])
+            ranked.append((i, -1, f))
+        start = 0
+        if self.baseline is None:
+            need = self.cc.baseline.readings
+            if n >= need:
+                self.baseline_values = x[:need].tolist()
+                self.count = need
+                self._learn_baseline()
+                start = need
+            else:
+                start = n
+        self.count = n
+        if start < n and self.detectors:
+            rest = x[start:].tolist()
+            fed_raw = np.asarray([self._transformed(v) for v in rest]) if self._lambda is not None else x[start:]
+            fed_z = (fed_raw - self.baseline.centre) / self.baseline.sigma
+            for rank, (key, det) in enumerate(self.detectors.items()):
+                feed = fed_z if det.needs_reference else fed_raw
+                for sig in type(det).scan(feed, **det.params()):
+                    i = start + sig.index
+                    hist.now = i
+                    f = self._finding(key, sig, i, float(x[i]), None if times is None else times[i], hist)
+                    ranked.append((i, rank, f))
+        if n:
+            self.last_value = float(x[-1])
+            self.last_time = None if times is None else times[-1]
+        ranked.sort(key=lambda t: (t[0], t[1]))
+        self.detectors = {}
+        return [f for _, _, f in ranked]
 
     # -- baseline ----------------------------------------------------------------------------
     def _learn_baseline(self) -> None:
@@ -153,11 +207,10 @@ class Monitor:
         return Finding(cc.name, "out_of_spec", "specification limit", None, i, time, i, time, direction,
                        size, msg, self.source, value, None, {"limit": limit})
 
-    def _finding(self, key: str, sig: Any, i: int, value: float, time: str | None) -> Finding:
+    def _finding(self, key: str, sig: Any, i: int, value: float, time: str | None, history: "_History") -> Finding:
         onset = None if sig.onset_index is None else self.watch_start + sig.onset_index
-        onset_time = self._time_at(onset)
-        size = self._size_since(onset, sig, DETECTORS[key].needs_reference)
-        b = self.baseline
+        onset_time = None if onset is None else history.time_at(onset)
+        size = self._size_since(onset, sig, DETECTORS[key].needs_reference, history)
         detail = dict(sig.detail)
         detail["detector_key"] = key
         if sig.size is not None:
@@ -172,15 +225,7 @@ class Monitor:
         )
         return _with_message(f, self.cc)
 
-    def _time_at(self, index: int | None) -> str | None:
-        if index is None:
-            return None
-        back = self.count - 1 - index
-        if 0 <= back < len(self.recent_times):
-            return self.recent_times[-1 - back]
-        return None
-
-    def _size_since(self, onset: int | None, sig: Any, sigma_units: bool) -> float | None:
+    def _size_since(self, onset: int | None, sig: Any, sigma_units: bool, history: "_History") -> float | None:
         """The change in the characteristic's unit.
 
         Shift and spike: mean of the readings since onset minus the baseline mean.
@@ -195,10 +240,9 @@ class Monitor:
                 return None
             return sig.size * self.raw_sigma if sigma_units else sig.size
         if onset is not None:
-            n = self.count - onset
-            if 0 < n <= len(self.recent_values):
-                vals = list(self.recent_values)[-n:]
-                return sum(vals) / n - self.raw_centre
+            vals = history.values_since(onset)
+            if vals:
+                return sum(vals) / len(vals) - self.raw_centre
         if sig.size is not None:
             return sig.size * self.raw_sigma if sigma_units else sig.size
         return None
@@ -251,6 +295,46 @@ class Monitor:
 
     def _expected_params(self, key: str) -> dict[str, Any]:
         return DETECTORS[key](**self.spec[key]).params()
+
+
+class _History:
+    """What a finding may look back on: the last ``keep`` readings before and including the current one."""
+
+    def time_at(self, index: int) -> str | None:  # pragma: no cover - interface
+        raise NotImplementedError
+
+    def values_since(self, index: int) -> list[float] | None:  # pragma: no cover - interface
+        raise NotImplementedError
+
+
+class _DequeHistory(_History):
+    """The live monitor's bounded deques."""
+
+    def __init__(self, m: "Monitor"):
+        self.m = m
+
+    def time_at(self, index: int) -> str | None:
+        back = self.m.count - 1 - index
+        return self.m.recent_times[-1 - back] if 0 <= back < len(self.m.recent_times) else None
+
+    def values_since(self, index: int) -> list[float] | None:
+        n = self.m.count - index
+        return list(self.m.recent_values)[-n:] if 0 < n <= len(self.m.recent_values) else None
+
+
+class _ArrayHistory(_History):
+    """The same view over whole arrays (the vectorised path), bounded exactly like the deques."""
+
+    def __init__(self, values: np.ndarray, times: list[str | None] | None, keep: int):
+        self.values, self.times, self.keep, self.now = values, times, keep, 0
+
+    def time_at(self, index: int) -> str | None:
+        back = self.now - index
+        return self.times[index] if self.times is not None and index >= 0 and 0 <= back < self.keep else None
+
+    def values_since(self, index: int) -> list[float] | None:
+        n = self.now + 1 - index
+        return self.values[index:self.now + 1].tolist() if index >= 0 and 0 < n <= self.keep else None
 
 
 def _fixed_baseline(mean: float, sigma: float) -> Any:
