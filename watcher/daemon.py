@@ -18,6 +18,7 @@ import os
 import signal
 import threading
 import time
+from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
@@ -96,6 +97,7 @@ class _Feed:
     reader: Any
     kind: str
     bad_seen: set[tuple[str, str]] = field(default_factory=set)
+    bad_counts: Counter = field(default_factory=Counter)
 
     def read(self) -> tuple[list[Any], list[Any]]:
         """(raw lines, follow events) available now."""
@@ -154,6 +156,7 @@ class Daemon:
                 self.wake.clear()
                 self._pass()
             self._pass()  # the batch in hand, then stop
+            self._log_bad_counts()
             event(self.log, "stop", f"stopped after {self.readings} readings this run")
             return 0
         finally:
@@ -305,6 +308,7 @@ class Daemon:
     def _log_batch(self, feed: _Feed, batch: Batch) -> None:
         for q in batch.quarantined:
             key = (q.file or "", q.reason.split(":")[0])
+            feed.bad_counts[key] += 1
             if key not in feed.bad_seen:
                 feed.bad_seen.add(key)
                 event(self.log, "bad_line", f"{q.file}:{q.line_no}: skipped: {q.reason} "
@@ -314,6 +318,13 @@ class Daemon:
             event(self.log, "finding", f.message, logging.INFO, characteristic=f.characteristic,
                   pattern=f.pattern, p_value=f.p_value, index=f.index)
         self._check_time_order(feed, batch)
+
+    def _log_bad_counts(self) -> None:
+        """At stop: how many lines each file skipped for each reason (each reason was logged once, when first seen)."""
+        for feed in self.feeds:
+            for (file, reason), n in sorted(feed.bad_counts.items()):
+                event(self.log, "bad_lines", f"{file}: {n} line(s) skipped this run: {reason}", logging.WARNING,
+                      source=feed.cfg.name, file=file, reason=reason, count=n)
 
     def _check_time_order(self, feed: _Feed, batch: Batch) -> None:
         """Readings are taken in arrival order; a time that goes backwards is accepted and logged once."""
