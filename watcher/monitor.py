@@ -48,7 +48,8 @@ class Monitor:
         self.count = 0
         self.baseline: Any = None  # a rules.baseline.Baseline once learnt
         self.baseline_values: list[float] = []
-        self.baseline_times: list[str | None] = []
+        self.k = cc.subgroup or 1
+        self.group: list[float] = []
         self.watch_start = 0  # index of the first reading the detectors saw
         self.detectors: dict[str, StreamDetector] = {}
         keep = max([self.cc.window] + [int(p.get("window", 0)) for p in self.spec.values()]) * 4
@@ -78,17 +79,22 @@ class Monitor:
             out.append(spec)
         if self.baseline is None:
             self.baseline_values.append(value)
-            self.baseline_times.append(time)
-            if len(self.baseline_values) >= self.cc.baseline.readings:
+            if len(self.baseline_values) >= self._baseline_size():
                 self._learn_baseline()
             return out
         if not self.detectors:
             return out
+        if self.k > 1:  # subgroups: the detectors see each complete subgroup's mean
+            self.group.append(value)
+            if len(self.group) < self.k:
+                return out
+            value = sum(self.group) / self.k
+            self.group = []
         z = self._standardise(value)
         for key, det in self.detectors.items():
             sig = det.update(z if det.needs_reference else self._transformed(value))
             if sig is not None:
-                out.append(self._finding(key, sig, i, value, time, self._live))
+                out.append(self._finding(key, sig, i, self.recent_values[-1], time, self._live))
         return out
 
     def scan_all(self, values: Any, times: list[str | None] | None = None) -> list[Finding]:
@@ -115,7 +121,7 @@ class Monitor:
             ranked.append((i, -1, f))
         start = 0
         if self.baseline is None:
-            need = self.cc.baseline.readings
+            need = self._baseline_size()
             if n >= need:
                 self.baseline_values = x[:need].tolist()
                 self.count = need
@@ -125,13 +131,16 @@ class Monitor:
                 start = n
         self.count = n
         if start < n and self.detectors:
-            rest = x[start:].tolist()
-            fed_raw = np.asarray([self._transformed(v) for v in rest]) if self._lambda is not None else x[start:]
+            k = self.k
+            rest = x[start:]
+            if k > 1:  # the mean of each complete subgroup, summed in reading order as feed() sums it
+                rest = np.asarray([sum(g) / k for g in rest[: len(rest) // k * k].reshape(-1, k).tolist()])
+            fed_raw = np.asarray([self._transformed(v) for v in rest.tolist()]) if self._lambda is not None else rest
             fed_z = (fed_raw - self.baseline.centre) / self.baseline.sigma
             for rank, (key, det) in enumerate(self.detectors.items()):
                 feed = fed_z if det.needs_reference else fed_raw
                 for sig in type(det).scan(feed, **det.params()):
-                    i = start + sig.index
+                    i = start + sig.index * k + k - 1
                     hist.now = i
                     f = self._finding(key, sig, i, float(x[i]), None if times is None else times[i], hist)
                     ranked.append((i, rank, f))
@@ -143,12 +152,22 @@ class Monitor:
         return [f for _, _, f in ranked]
 
     # -- baseline ----------------------------------------------------------------------------
+    def _baseline_size(self) -> int:
+        """Readings in the baseline; with subgroups, a whole number of subgroups and at least 20 of them."""
+        n = self.cc.baseline.readings
+        if self.k > 1:
+            n = max(n // self.k, 20) * self.k
+        return n
+
     def _learn_baseline(self) -> None:
         from rules.baseline import estimate_baseline
 
         raw = self.baseline_values
-        b = estimate_baseline(raw)
-        self.baseline_values, self.baseline_times = [], []
+        if self.k > 1:
+            b = _subgroup_baseline(raw, self.k)
+        else:
+            b = estimate_baseline(raw)
+        self.baseline_values = []
         self._set_baseline(b, raw)
 
     def _set_baseline(self, b: Any, raw: list[float] | None = None) -> None:
@@ -176,7 +195,7 @@ class Monitor:
         """Forget the baseline and learn a new one from the next readings."""
         self.baseline = None
         self.detectors = {}
-        self.baseline_values, self.baseline_times = [], []
+        self.baseline_values, self.group = [], []
 
     def _transformed(self, x: float) -> float:
         """The reading on the monitored scale: Box-Cox (Box and Cox 1964) where the baseline chose it."""
@@ -208,7 +227,7 @@ class Monitor:
                        size, msg, self.source, value, None, {"limit": limit})
 
     def _finding(self, key: str, sig: Any, i: int, value: float, time: str | None, history: "_History") -> Finding:
-        onset = None if sig.onset_index is None else self.watch_start + sig.onset_index
+        onset = None if sig.onset_index is None else self.watch_start + sig.onset_index * self.k
         onset_time = None if onset is None else history.time_at(onset)
         size = self._size_since(onset, sig, DETECTORS[key].needs_reference, history)
         detail = dict(sig.detail)
@@ -257,7 +276,7 @@ class Monitor:
             "raw_centre": self.raw_centre,
             "raw_sigma": self.raw_sigma,
             "baseline_values": _pack(self.baseline_values),
-            "baseline_times": self.baseline_times,
+            "group": self.group,
             "detectors": {k: d.export_state() for k, d in self.detectors.items()},
             "recent_values": _pack(list(self.recent_values)),
             "recent_times": list(self.recent_times),
@@ -275,7 +294,7 @@ class Monitor:
             raise ValueError(f"monitor state version {state.get('version')!r} is not supported")
         m.count = state["count"]
         m.baseline_values = _unpack(state["baseline_values"])
-        m.baseline_times = list(state["baseline_times"])
+        m.group = list(state["group"])
         m.recent_values.extend(_unpack(state["recent_values"]))
         m.recent_times.extend(state["recent_times"])
         m.last_time, m.last_value = state["last_time"], state["last_value"]
@@ -335,6 +354,24 @@ class _ArrayHistory(_History):
     def values_since(self, index: int) -> list[float] | None:
         n = self.now + 1 - index
         return self.values[index:self.now + 1].tolist() if index >= 0 and 0 < n <= self.keep else None
+
+
+def _subgroup_baseline(raw: list[float], k: int) -> Any:
+    """Centre = grand mean; sigma of subgroup means = (R-bar / d2(k)) / sqrt(k) (rules.subgroups)."""
+    from rules.baseline import fixed_baseline
+    from rules.subgroups import consecutive_subgroups, summarise_subgroups
+
+    summary = summarise_subgroups(consecutive_subgroups(raw, k))
+    if not summary.sigma_of_means or summary.sigma_of_means <= 0:
+        return _no_spread(fixed_baseline(summary.grand_mean, 1.0, note="subgroups"))
+    return fixed_baseline(summary.grand_mean, summary.sigma_of_means,
+                          note=f"subgroups of {k}: sigma of means from R-bar/d2 ({summary.n_subgroups} subgroups)")
+
+
+def _no_spread(b: Any) -> Any:
+    from dataclasses import replace
+
+    return replace(b, no_spread=True, no_spread_reason="every subgroup has zero range (a stuck gauge?)")
 
 
 def _fixed_baseline(mean: float, sigma: float) -> Any:
