@@ -236,6 +236,8 @@ class Monitor:
             detail["size_detector_units"] = sig.size
         if size is not None and self.raw_sigma:
             detail["size_sigma"] = size / self.raw_sigma
+        if sig.pattern == "drift" and "slope_per_reading" in detail and self._lambda is None:
+            detail.update(self._projection(detail["slope_per_reading"], onset, i, time, history))
         f = Finding(
             characteristic=self.cc.name, pattern=sig.pattern, detector=sig.detector,
             p_value=None if sig.p_value is None else float(sig.p_value), index=i, time=time,
@@ -243,6 +245,38 @@ class Monitor:
             message="", source=self.source, value=value, statistic=sig.statistic, detail=detail,
         )
         return _with_message(f, self.cc)
+
+    def _projection(self, slope: float, onset: int | None, i: int, time: str | None, history: "_History") -> dict:
+        """Slope per hour and, where a limit lies ahead, the hours until the fitted line reaches it.
+
+        The rate of readings comes from the timestamps across the window (or ``readings_per_hour``).
+        The level now is the mean of the window plus slope x half its span (the fitted line at the
+        last reading).  A projection, not a forecast: it assumes the drift goes on at the same rate.
+        """
+        out: dict[str, Any] = {}
+        per_hour = self.cc.readings_per_hour
+        t0 = history.time_at(onset) if onset is not None else None
+        if t0 is not None and time is not None and i > onset:
+            from datetime import datetime
+
+            try:
+                hours = (datetime.fromisoformat(time) - datetime.fromisoformat(t0)).total_seconds() / 3600
+                if hours > 0:
+                    per_hour = (i - onset) / hours
+            except (TypeError, ValueError):
+                pass
+        if not per_hour:
+            return out
+        out["slope_per_hour"] = slope * per_hour
+        vals = history.values_since(onset) if onset is not None else None
+        if not vals or slope == 0:
+            return out
+        level = sum(vals) / len(vals) + slope * (len(vals) - 1) / 2
+        limit = self.cc.usl if slope > 0 else self.cc.lsl
+        if limit is not None and (limit - level) * slope > 0:
+            out["hours_to_limit"] = (limit - level) / (slope * per_hour)
+            out["limit"] = limit
+        return out
 
     def _size_since(self, onset: int | None, sig: Any, sigma_units: bool, history: "_History") -> float | None:
         """The change in the characteristic's unit.

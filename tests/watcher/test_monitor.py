@@ -108,3 +108,26 @@ def test_vectorised_path_equals_live(seed, k, step, slope, rounding):
     a, _ = live(cc, x, times)
     b = Monitor(cc, "cw").scan_all(x, times)
     assert [f.to_dict() for f in a] == [f.to_dict() for f in b]
+
+
+def test_drift_carries_slope_per_hour_and_projection():
+    # An invented lathe: pins read every 15 s (240 an hour), the tool wears 0.0001 mm per pin after pin 300.
+    rng = np.random.default_rng(12)
+    n = 700
+    x = 8.0 + 0.0005 * rng.normal(size=n) + np.r_[np.zeros(300), 0.0001 * np.arange(n - 300)]
+    times = [f"2026-01-05T{6 + (15 * i) // 3600:02d}:{(15 * i) // 60 % 60:02d}:{15 * i % 60:02d}+00:00" for i in range(n)]
+    found, _ = live(char(usl=8.1, window=30, detectors={"mann_kendall": {}}), x, times)
+    drifts = [f for f in found if f.pattern == "drift" and f.index > 300]
+    assert drifts and drifts[0].direction == "up"
+    f = drifts[0]
+    d = f.detail
+    # The slope is Sen's slope over the window that fired (scipy.stats.theilslopes as the reference), times the
+    # reading rate measured from the timestamps (240 an hour).
+    from scipy.stats import theilslopes
+
+    window = x[f.onset_index: f.index + 1]
+    assert d["slope_per_hour"] == pytest.approx(theilslopes(window).slope * 240, rel=1e-6)
+    # Hours to the limit: (limit - fitted level at the last reading) / slope per hour.
+    level = window.mean() + theilslopes(window).slope * (len(window) - 1) / 2
+    assert d["hours_to_limit"] == pytest.approx((8.1 - level) / d["slope_per_hour"], rel=1e-6)
+    assert d["limit"] == 8.1
