@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 from pathlib import Path
 
@@ -157,6 +158,10 @@ _COMMANDS = {"check": _cmd_check, "replay": _cmd_replay, "run": _cmd_run, "statu
 
 
 def main(argv: list[str] | None = None) -> int:
+    # Small matrices only (Markov chains of a few hundred states): one BLAS thread is fastest and leaves
+    # the other core to the reading path.  Must be set before numpy is first imported.
+    for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ.setdefault(var, "1")
     parser = _parser()
     args = parser.parse_args(argv)
     if args.command is None:
