@@ -123,7 +123,7 @@ class PettittDetector(StreamDetector):
     """
 
     key = "pettitt"
-    name = "Pettitt"
+    name = "Pettitt change-point test"
     STATE_VERSION = 1
     PARAMS = ("window", "alpha")
 
@@ -171,7 +171,7 @@ class PettittDetector(StreamDetector):
         size = float(values[tau:].mean() - values[:tau].mean())
         return Signal(
             pattern="shift",
-            detector=self.key,
+            detector=self.name,
             p_value=p,
             index=index,
             onset_index=index - self.window + 1 + tau,

@@ -751,7 +751,7 @@ class MedianRunsDetector(_WindowRunDetector):
     """
 
     key = "median_runs"
-    name = "runs about the median"
+    name = "runs about the median (Wald-Wolfowitz)"
     SIDES = ("both", "grouping", "mixture")
     MIN_WINDOW = 8
     WINDOW_KIND = "median"

@@ -336,7 +336,7 @@ class MannKendallDetector(StreamDetector):
     """
 
     key = "mann_kendall"
-    name = "Mann-Kendall"
+    name = "Mann-Kendall trend test"
     STATE_VERSION = 1
     PARAMS = ("window", "alpha", "direction")
 
@@ -414,7 +414,7 @@ class MannKendallDetector(StreamDetector):
         slope = _sen_median_unit(values)
         return Signal(
             pattern="drift",
-            detector=self.key,
+            detector=self.name,
             p_value=p,
             index=index,
             onset_index=index - w + 1,

@@ -253,7 +253,7 @@ def test_golden_index_on_ramp(w, seed, slope):
     assert first.p_value == pytest.approx(ref[2], rel=1e-12)
     assert first.index > 150  # never before the ramp on these seeds
     assert first.onset_index == first.index - w + 1
-    assert first.pattern == "drift" and first.detector == "mann_kendall"
+    assert first.pattern == "drift" and first.detector == "Mann-Kendall trend test"
     win = x[first.onset_index : first.index + 1]
     assert first.statistic == _s_by_pairs(list(win))
     assert first.detail["slope_per_reading"] == pytest.approx(stats.theilslopes(win).slope)
