@@ -27,7 +27,7 @@ from watcher.config import Config, SourceConfig
 from watcher.log import LOGGER, event
 from watcher.records import Finding
 from watcher.route import Batch, Route
-from watcher.store import Store
+from watcher.store import Store, utc_now
 
 MAX_BYTES_PER_FILE = 1 << 20  # read at most this much of one file per pass, so one file cannot starve others
 HOUSEKEEPING = 1.0  # seconds between housekeeping passes when nothing happens
@@ -119,7 +119,7 @@ class Daemon:
     """The live watcher over one configuration."""
 
     def __init__(self, cfg: Config, *, stdin: str | None = None, stdin_stream: Any = None,
-                 on_findings: Callable[[list[Finding]], None] | None = None):
+                 on_findings: Callable[[list[Finding]], None] | None = None, alerts: Any = True):
         self.cfg = cfg
         self.log = logging.getLogger(LOGGER)
         self.stdin_name = stdin
@@ -131,7 +131,16 @@ class Daemon:
         self.route: Route | None = None
         self.feeds: list[_Feed] = []
         self.readings = 0
-        self.hooks: list[Any] = []  # objects with optional on_batch(conn, batch) / tick(now) / close()
+        self._next_commands = 0.0
+        # Objects with optional start(daemon), on_batch(conn, batch) (inside the batch's transaction),
+        # tick(daemon) (after each pass) and close().  Episodes and alert delivery are one of them.
+        self.hooks: list[Any] = []
+        if alerts is True:
+            from watcher.outbox import AlertHook
+
+            self.hooks.append(AlertHook(cfg))
+        elif alerts:
+            self.hooks.append(alerts)
 
     # -- life cycle ---------------------------------------------------------------------------
     def request_stop(self, *_: object) -> None:
@@ -260,6 +269,7 @@ class Daemon:
                     continue
                 self._commit(feed, lines)
                 more = more or bool(lines)
+            self._apply_commands()
             for hook in self.hooks:
                 if hasattr(hook, "tick"):
                     hook.tick(self)
@@ -298,6 +308,30 @@ class Daemon:
         self._log_batch(feed, batch)
         if self.on_findings is not None and batch.findings:
             self.on_findings(batch.findings)
+
+    def _apply_commands(self) -> None:
+        """Requests left by other commands (``linewatch rebaseline``), at most every half second."""
+        now = time.monotonic()
+        if now < self._next_commands:
+            return
+        self._next_commands = now + 0.5
+        assert self.store is not None and self.route is not None
+        rows = self.store.conn.execute("SELECT id, kind, subject, note FROM commands WHERE done_at IS NULL ORDER BY id").fetchall()
+        for r in rows:
+            store = self.store
+            with store.transaction() as c:
+                m = self.route.monitors.get(r["subject"])
+                if r["kind"] == "rebaseline" and m is not None:
+                    m.rebaseline()
+                    store.save_characteristic(c, m.cc.name, m.source, m.export_state(), m.count, m.last_time, m.last_value)
+                    for hook in self.hooks:
+                        if hasattr(hook, "on_rebaseline"):
+                            hook.on_rebaseline(c, m.cc.name, r["note"] or "")
+                    store.add_event(c, "rebaselined", m.cc.name, r["note"])
+                    event(self.log, "rebaseline", f"{m.cc.name}: learning a new baseline from the next "
+                          f"{m._baseline_size()} readings" + (f" ({r['note']})" if r["note"] else ""),
+                          characteristic=m.cc.name)
+                c.execute("UPDATE commands SET done_at = ? WHERE id = ?", (utc_now(), r["id"]))
 
     # -- logging ----------------------------------------------------------------------------------
     def _log_follow_event(self, source: str, ev: Any) -> None:

@@ -53,23 +53,41 @@ def read_status(cfg: Config) -> dict[str, Any]:
             reasons = {r[0]: r[1] for r in c.execute(
                 "SELECT reason, count(*) FROM quarantine WHERE source = ? GROUP BY reason ORDER BY 2 DESC", (s.name,))}
             sources[s.name] = {"kind": s.kind, "path": s.path, "files": files, "quarantined_by_reason": reasons}
-        return {"state": str(cfg.state_dir), "characteristics": chars, "sources": sources}
+        return {"state": str(cfg.state_dir), "characteristics": chars, "sources": sources,
+                "records": _records(c), "alerts": _alerts(c)}
     finally:
         store.close()
 
 
 def _open_episodes(c: Any) -> dict[str, list[dict[str, Any]]]:
-    """Open episodes per characteristic, where the episodes table exists."""
-    try:
-        rows = c.execute("SELECT * FROM episodes WHERE state != 'closed' ORDER BY id").fetchall()
-    except Exception:  # no episodes table yet (alerting not set up in this state folder)
+    """Live episodes per characteristic (none where alerting never ran in this state folder)."""
+    if not _has_table(c, "episodes"):
         return {}
     out: dict[str, list[dict[str, Any]]] = {}
-    for r in rows:
+    for r in c.execute("SELECT * FROM episodes WHERE state != 'closed' ORDER BY first_index"):
         d = dict(r)
-        out.setdefault(d.get("characteristic"), []).append(
-            {k: d.get(k) for k in ("id", "pattern", "state", "onset_time", "min_p_value", "direction") if k in d})
+        out.setdefault(d["characteristic"], []).append(
+            {k: d.get(k) for k in ("id", "pattern", "state", "severity", "onset_time", "min_p", "direction")})
     return out
+
+
+def _has_table(c: Any, name: str) -> bool:
+    return c.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = ?", (name,)).fetchone() is not None
+
+
+def _records(c: Any) -> list[dict[str, Any]]:
+    """Acknowledgements and re-baselinings, newest first (the last 20)."""
+    rows = c.execute("SELECT created_at, kind, subject, note FROM events WHERE kind IN "
+                     "('acknowledged', 'rebaseline_requested', 'rebaselined') ORDER BY id DESC LIMIT 20").fetchall()
+    return [dict(r) for r in rows]
+
+
+def _alerts(c: Any) -> dict[str, Any]:
+    if not _has_table(c, "alert_delivery"):
+        return {"deliveries": {}, "targets": []}
+    from watcher.outbox import delivery_counts, target_health
+
+    return {"deliveries": delivery_counts(c), "targets": target_health(c)}
 
 
 def format_status(st: dict[str, Any]) -> str:
@@ -80,7 +98,8 @@ def format_status(st: dict[str, Any]) -> str:
         for w in c["warnings"]:
             lines.append(f"  warning: {w}")
         for e in c["open_episodes"]:
-            lines.append(f"  open episode {e.get('id')}: {e.get('pattern')} ({e.get('state')})")
+            p = f", smallest p {e['min_p']:.2g}" if e.get("min_p") is not None else ""
+            lines.append(f"  episode {e['id']}: {e['pattern']} {e.get('direction') or ''} ({e['state']}, {e['severity']}{p})")
     lines.append("")
     for name, s in st["sources"].items():
         lines.append(f"source {name} ({s['kind']}):")
@@ -88,4 +107,11 @@ def format_status(st: dict[str, Any]) -> str:
             lines.append(f"  {path}: offset {f['offset']}, {f['lines']} lines, {f['quarantined']} quarantined")
         for reason, n in s["quarantined_by_reason"].items():
             lines.append(f"  quarantined: {n} x {reason}")
+    for target, counts in st["alerts"]["deliveries"].items():
+        lines.append(f"alerts to {target}: " + ", ".join(f"{n} {k}" for k, n in sorted(counts.items())))
+    if st["records"]:
+        lines.append("")
+        lines.append("recent acknowledgements and re-baselines:")
+        for r in st["records"]:
+            lines.append(f"  {r['created_at']} {r['kind']} {r['subject']}" + (f": {r['note']}" if r["note"] else ""))
     return "\n".join(lines)

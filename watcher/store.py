@@ -48,6 +48,9 @@ SCHEMA = [
         id INTEGER PRIMARY KEY AUTOINCREMENT, created_at TEXT NOT NULL, source TEXT NOT NULL,
         file TEXT, line_no INTEGER, byte_offset INTEGER, raw TEXT NOT NULL, reason TEXT NOT NULL)""",
     "CREATE INDEX IF NOT EXISTS quarantine_by_file ON quarantine (source, file)",
+    """CREATE TABLE IF NOT EXISTS commands (
+        id INTEGER PRIMARY KEY AUTOINCREMENT, created_at TEXT NOT NULL, kind TEXT NOT NULL,
+        subject TEXT NOT NULL, note TEXT, done_at TEXT)""",
     """CREATE TABLE IF NOT EXISTS events (
         id INTEGER PRIMARY KEY AUTOINCREMENT, created_at TEXT NOT NULL, kind TEXT NOT NULL,
         subject TEXT, note TEXT)""",
@@ -191,6 +194,13 @@ class Store:
     @staticmethod
     def add_event(c: sqlite3.Connection, kind: str, subject: str | None, note: str | None) -> None:
         c.execute("INSERT INTO events (created_at, kind, subject, note) VALUES (?,?,?,?)", (utc_now(), kind, subject, note))
+
+    @staticmethod
+    def add_command(c: sqlite3.Connection, kind: str, subject: str, note: str | None) -> int:
+        """A request for the running (or next) daemon, e.g. to learn a new baseline."""
+        cur = c.execute("INSERT INTO commands (created_at, kind, subject, note) VALUES (?,?,?,?)",
+                        (utc_now(), kind, subject, note))
+        return cur.lastrowid
 
     # -- reads ----------------------------------------------------------------------------
     def load_characteristics(self) -> dict[str, dict[str, Any]]:

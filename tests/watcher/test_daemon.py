@@ -302,3 +302,49 @@ def test_mqtt_source_through_the_daemon(tmp_path):
     finally:
         broker.terminate()
         broker.wait(5)
+
+
+def test_alerts_ack_and_rebaseline_through_the_commands(tmp_path):
+    """A real HTTP receiver gets one alert when a shift opens; ack and rebaseline are recorded and shown."""
+    from tests.watcher.http_receiver import HttpReceiver
+
+    rx = HttpReceiver().start()
+    try:
+        (tmp_path / "data").mkdir()
+        cfgp = tmp_path / "cfg.yaml"
+        cfgp.write_text(CONFIG.format(poll="never") + f"alerts:\n  - url: json://127.0.0.1:{rx.port}/alerts\n")
+        f1 = tmp_path / "data" / "cw-1.csv"
+        rng = np.random.default_rng(9)
+        x = 500 + rng.normal(size=300)
+        x[150:] += 4.0
+        f1.write_text("time,mass_g\n" + csv_lines(x))
+        with Running(cfgp) as r:
+            r.wait_for(300)
+            t0 = time.time()
+            while time.time() - t0 < 10 and not rx.requests:
+                time.sleep(0.1)
+            st = read_status(r.cfg)
+            eps = st["characteristics"]["mass"]["open_episodes"]
+            assert any(e["pattern"] == "shift" and e["direction"] == "up" for e in eps)
+            shift = next(e for e in eps if e["pattern"] == "shift")
+            out = run_cli("ack", str(cfgp), shift["id"], "--note", "filler valve checked")
+            assert out.returncode == 0 and shift["id"] in out.stdout
+            out = run_cli("rebaseline", str(cfgp), "mass", "--note", "new film reel")
+            assert out.returncode == 0
+            t0 = time.time()
+            while time.time() - t0 < 10 and read_status(r.cfg)["characteristics"]["mass"]["open_episodes"]:
+                time.sleep(0.1)
+            st = read_status(r.cfg)
+            assert st["characteristics"]["mass"]["open_episodes"] == []
+            assert st["characteristics"]["mass"]["phase"].startswith("learning baseline")
+            kinds = [(e["kind"], e["note"]) for e in st["records"]]
+            assert ("acknowledged", "filler valve checked") in kinds and ("rebaselined", "new film reel") in kinds
+        bodies = [q["body"] for q in rx.requests]
+        assert any(shift["id"] in (b.get("message", "") + b.get("title", "")) for b in bodies)
+        assert run_cli("ack", str(cfgp), "no-such-episode").returncode == 2
+    finally:
+        rx.stop()
+
+
+def run_cli(*args: str) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "watcher", *args], capture_output=True, text=True, timeout=60)
