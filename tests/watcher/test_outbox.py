@@ -266,9 +266,8 @@ def test_daemon_hook_end_to_end(tmp_path):
             "time,mass_g\n" + "".join(f"{1767337200 + 2 * i},{v:.3f}\n" for i, v in enumerate(vals))
         )
         cfg = load_config(tmp_path / "cfg.yaml")
-        d = Daemon(cfg)
-        d.hooks.append(AlertHook(cfg, silence_every_s=0.05,
-                                 outbox_overrides={"chart_process": False, "poll_s": 0.05}))
+        d = Daemon(cfg, alerts=AlertHook(cfg, silence_every_s=0.05,
+                                         outbox_overrides={"chart_process": False, "poll_s": 0.05}))
         stop = threading.Event()
         th = threading.Thread(target=d.run, args=(stop, False), daemon=True)
         th.start()
