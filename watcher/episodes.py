@@ -339,7 +339,8 @@ class EpisodeBook:
 
         An ``out_of_spec`` finding joins the live pattern episodes of its
         characteristic (escalating each once, and keeping them open) or, when
-        there is none, opens an ``out_of_spec`` episode of its own.
+        there is none, opens an ``out_of_spec`` episode of its own.  A ``spike``
+        joins a live ``shift`` episode of the same direction.
         """
         facts = facts_from(spec)
         live = self.open_episodes(finding.characteristic)
@@ -353,6 +354,10 @@ class EpisodeBook:
                         out.append(intent)
                 return out
         same = [e for e in live if e.pattern == finding.pattern]
+        if not same and finding.pattern == "spike":
+            # Readings beyond 3 sigma while the level has shifted the same way belong to that shift:
+            # one episode, not two.
+            same = [e for e in live if e.pattern == "shift" and e.direction == finding.direction]
         if same:
             intent = self._absorb(same[0], finding, facts, recent)
             return [intent] if intent else []

@@ -23,6 +23,7 @@ from watcher.episodes import (
     close_for_rebaseline,
     default_close_after,
     get_episode,
+    ensure_schema,
     list_episodes,
 )
 from watcher.records import Finding
@@ -320,3 +321,13 @@ def test_onset_is_the_earliest_estimate(conn):
     ep = get_episode(conn, it.episode_id)
     assert (ep.onset_index, ep.onset_time) == (75, "t75")
     assert ep.min_p == pytest.approx(1e-9) and ep.min_p_detector == "CUSUM"
+
+
+def test_spike_during_a_shift_joins_the_shift_episode(conn):
+    ensure_schema(conn)
+    book = EpisodeBook(conn, EpisodeSettings(close_after=100))
+    assert [i.kind for i in book.on_finding(finding(200, p=1e-6, direction="up"), SPEC)] == ["opened"]
+    assert book.on_finding(finding(205, "spike", p=1e-3, direction="up"), SPEC) == []
+    assert [e.pattern for e in book.open_episodes("fill weight")] == ["shift"]
+    # A spike the other way is news of its own.
+    assert [i.kind for i in book.on_finding(finding(210, "spike", p=1e-3, direction="down"), SPEC)] == ["opened"]
