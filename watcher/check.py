@@ -12,6 +12,7 @@ def check_report(cfg: Config) -> dict[str, Any]:
     """A plain-data summary of what would be watched, and how."""
     from watcher.redact import redact_url
 
+    learnt = _learnt(cfg)
     chars = []
     for cc in cfg.characteristics:
         budget = cc.false_alarms or cfg.false_alarms
@@ -28,6 +29,7 @@ def check_report(cfg: Config) -> dict[str, Any]:
             "baseline": ({"mean": b.mean, "sigma": b.sigma} if b.fixed else {"readings": b.readings, "file": b.file}),
             "false_alarms": budget.text(),
             "detectors": resolve_detectors(cc),
+            "state": learnt.get(cc.name),
         })
     return {
         "config": cfg.file,
@@ -44,6 +46,18 @@ def check_report(cfg: Config) -> dict[str, Any]:
     }
 
 
+def _learnt(cfg: Config) -> dict[str, Any]:
+    """What the state folder says of each baseline, where linewatch has run already."""
+    from watcher.status import read_status
+
+    try:
+        st = read_status(cfg)
+    except FileNotFoundError:
+        return {}
+    return {name: {"phase": c["phase"], "warnings": c["warnings"], "baseline": c["baseline"]}
+            for name, c in st["characteristics"].items() if c["readings"]}
+
+
 def format_check(r: dict[str, Any]) -> str:
     lines = [f"{r['config']}: valid", f"state folder: {r['state']}  (time zone {r['timezone']})", ""]
     lines.append(f"{len(r['sources'])} source(s):")
@@ -58,6 +72,16 @@ def format_check(r: dict[str, Any]) -> str:
         lines.append(f"  {c['name']} ({c['source']}.{c['column']}{', ' + c['unit'] if c['unit'] else ''}): {limits}")
         lines.append(f"    baseline: {base}; window {c['window']}; false-alarm budget {c['false_alarms']}")
         lines.append(f"    detectors: {', '.join(c['detectors']) or 'none'}")
+        if c["state"]:
+            b = c["state"]["baseline"] or {}
+            how = ""
+            if b.get("distribution_free_only"):
+                how = " (not normal, even after Box-Cox: distribution-free detectors only)"
+            elif b.get("transform"):
+                how = " (watched on the Box-Cox scale)"
+            lines.append(f"    learnt so far: {c['state']['phase']}{how}")
+            for w in c["state"]["warnings"]:
+                lines.append(f"    warning: {w}")
     lines.append(f"{len(r['alerts'])} alert target(s)" + (": " + ", ".join(r["alerts"]) if r["alerts"] else ""))
     if r["digest"]:
         lines.append(f"digest daily at {r['digest']['at']} into {r['digest']['folder']}")

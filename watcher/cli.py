@@ -42,9 +42,25 @@ def _parser() -> argparse.ArgumentParser:
     u.add_argument("--stdin", metavar="NAME", help="read the lines of source NAME from standard input")
     u.add_argument("--log-format", choices=("plain", "json"), default="plain", help="log lines on stderr")
 
+    a = sub.add_parser("ack", help="acknowledge an episode: no more escalation alerts for it")
+    a.add_argument("config")
+    a.add_argument("episode", help="the episode id printed in its alerts")
+    a.add_argument("--note", default="", help="what was found or done, for the record and the digest")
+
+    b = sub.add_parser("rebaseline", help="close a characteristic's episodes and learn a new baseline from the next readings")
+    b.add_argument("config")
+    b.add_argument("characteristic")
+    b.add_argument("--note", default="", help="why (e.g. the deliberate process change), for the record")
+
     s = sub.add_parser("status", help="what has been read and found so far (works while the watcher runs)")
     s.add_argument("config")
     s.add_argument("--json", action="store_true", help="one JSON object on stdout")
+
+    from watcher.demo import add_demo_arguments
+    from watcher.digest import add_digest_arguments
+
+    add_digest_arguments(sub.add_parser("digest", help="write the digest of a period (HTML, text, JSON); --send sends it"))
+    add_demo_arguments(sub.add_parser("demo", help="watch an invented line for one accelerated shift (about 20 s)"))
     return p
 
 
@@ -154,7 +170,69 @@ def _cmd_status(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-_COMMANDS = {"check": _cmd_check, "replay": _cmd_replay, "run": _cmd_run, "status": _cmd_status}
+def _cmd_digest(args: argparse.Namespace) -> int:
+    from watcher.digest import run_digest
+
+    return run_digest(args)
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from watcher.demo import run_demo
+
+    return run_demo(args)
+
+
+def _cmd_ack(args: argparse.Namespace) -> int:
+    from watcher.episodes import acknowledge, ensure_schema
+    from watcher.store import Store
+
+    cfg = _load(args.config)
+    if cfg is None:
+        return EXIT_BAD_INPUT
+    if not (cfg.state_dir / "linewatch.sqlite").exists():
+        print(f"{cfg.state_dir}: no state database here yet: there is nothing to acknowledge", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    store = Store(cfg.state_dir)
+    try:
+        with store.transaction() as c:
+            ensure_schema(c)
+            ep = acknowledge(c, args.episode, args.note)
+            store.add_event(c, "acknowledged", args.episode, args.note)
+    except (KeyError, ValueError) as e:
+        print(f"not acknowledged: {e.args[0] if e.args else e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    finally:
+        store.close()
+    print(f"episode {ep.id} ({ep.characteristic}, {ep.pattern}) acknowledged" + (f": {args.note}" if args.note else ""))
+    return EXIT_OK
+
+
+def _cmd_rebaseline(args: argparse.Namespace) -> int:
+    from watcher.store import Store
+
+    cfg = _load(args.config)
+    if cfg is None:
+        return EXIT_BAD_INPUT
+    names = [c.name for c in cfg.characteristics]
+    if args.characteristic not in names:
+        print(f"no characteristic {args.characteristic!r} in {args.config} (known: {', '.join(names)})", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    store = Store(cfg.state_dir)
+    try:
+        with store.transaction() as c:
+            store.add_command(c, "rebaseline", args.characteristic, args.note)
+            store.add_event(c, "rebaseline_requested", args.characteristic, args.note)
+    finally:
+        store.close()
+    print(f"{args.characteristic}: a new baseline will be learnt from the next readings "
+          "(the running watcher picks this up within a second; otherwise at its next start)")
+    return EXIT_OK
+
+
+_COMMANDS = {
+    "check": _cmd_check, "replay": _cmd_replay, "run": _cmd_run, "status": _cmd_status, "ack": _cmd_ack,
+    "rebaseline": _cmd_rebaseline, "digest": _cmd_digest, "demo": _cmd_demo,
+}
 
 
 def main(argv: list[str] | None = None) -> int:

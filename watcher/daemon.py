@@ -135,12 +135,17 @@ class Daemon:
         # Objects with optional start(daemon), on_batch(conn, batch) (inside the batch's transaction),
         # tick(daemon) (after each pass) and close().  Episodes and alert delivery are one of them.
         self.hooks: list[Any] = []
+        from watcher.schedule import AggregatesHook, DigestHook
+
+        self.hooks.append(AggregatesHook(cfg))  # what the digest needs, kept bounded
         if alerts is True:
             from watcher.outbox import AlertHook
 
             self.hooks.append(AlertHook(cfg))
         elif alerts:
             self.hooks.append(alerts)
+        if cfg.digest is not None:
+            self.hooks.append(DigestHook(cfg))
 
     # -- life cycle ---------------------------------------------------------------------------
     def request_stop(self, *_: object) -> None:
@@ -348,6 +353,8 @@ class Daemon:
                 event(self.log, "bad_line", f"{q.file}:{q.line_no}: skipped: {q.reason} "
                       "(further lines of this file with this reason are counted, not logged)", logging.WARNING,
                       source=q.source, file=q.file, line=q.line_no, reason=q.reason)
+        for name, text in batch.notices:
+            event(self.log, "baseline", text, logging.WARNING, characteristic=name)
         for f in batch.findings:
             event(self.log, "finding", f.message, logging.INFO, characteristic=f.characteristic,
                   pattern=f.pattern, p_value=f.p_value, index=f.index)

@@ -60,6 +60,7 @@ class Monitor:
         self.last_time: str | None = None
         self.last_value: float | None = None
         self.warnings: list[str] = []
+        self.notices: list[str] = []  # news about the baseline, for the log and an alert; taken by the route
         self._lambda: float | None = None
         self.raw_centre: float | None = None
         self.raw_sigma: float | None = None
@@ -173,6 +174,12 @@ class Monitor:
     def _set_baseline(self, b: Any, raw: list[float] | None = None) -> None:
         self.baseline = b
         self._lambda = (b.transform or {}).get("boxcox") if b is not None else None
+        if b.no_spread:
+            self.notices.append(f"{self.cc.name}: the baseline has no spread ({b.no_spread_reason}); "
+                                "no detector can run until it is re-learnt. Check the gauge and its resolution.")
+        elif b.distribution_free_only:
+            self.notices.append(f"{self.cc.name}: the baseline is not normal, even after a Box-Cox transform; "
+                                "only the distribution-free detectors run.")
         if raw is not None:  # sizes are told in the unit, so keep the centre and sigma of the raw readings too
             self.raw_centre = sum(raw) / len(raw)
             mr = [abs(a - c) for a, c in zip(raw[1:], raw[:-1])]

@@ -681,6 +681,20 @@ class AlertHook:
             self.sender = OutboxSender(store.path, self.targets, self.outbox_settings, stream=self.stream)
             self.sender.start()
 
+    def _notices(self, conn: sqlite3.Connection, batch: Any) -> None:
+        """News about a baseline (no spread; not normal) as an alert of its own."""
+        from watcher.episodes import AlertIntent
+
+        for name, text in getattr(batch, "notices", ()):
+            m = self.daemon.route.monitors.get(name)
+            it = AlertIntent(
+                episode_id=f"baseline-{name}", kind="baseline", severity="notice", characteristic=name,
+                source=m.source if m else "", pattern="baseline", title=f"{name}: baseline needs a look",
+                body=text + "\nlinewatch is advisory; follow the site's procedures.", created_at=_iso(self.wall_clock()),
+            )
+            enqueue(conn, it, self.targets, now=self.wall_clock())
+            self._queued = True
+
     def on_rebaseline(self, conn: sqlite3.Connection, characteristic: str, note: str) -> None:
         """Inside the caller's transaction: close the characteristic's episodes and queue what that tells."""
         from watcher.episodes import close_for_rebaseline
@@ -727,6 +741,7 @@ class AlertHook:
         for it in intents:
             enqueue(conn, it, self.targets, now=self.wall_clock())
         self._queued = self._queued or bool(intents)
+        self._notices(conn, batch)
 
     def tick(self, daemon: Any) -> None:
         if self._queued and self.sender is not None:

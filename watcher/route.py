@@ -36,6 +36,7 @@ class Batch:
     per_file: dict[str, list[int]] = field(default_factory=dict)  # path -> [lines, quarantined]
     values: dict[str, list[tuple[float, str | None]]] = field(default_factory=dict)  # for the digest's aggregates
     backwards: list[tuple[str, str, str]] = field(default_factory=list)  # (characteristic, time, previous time)
+    notices: list[tuple[str, str]] = field(default_factory=list)  # (characteristic, news of its baseline)
 
     def merge(self, other: "Batch") -> None:
         self.readings += other.readings
@@ -45,6 +46,7 @@ class Batch:
         for k, v in other.values.items():
             self.values.setdefault(k, []).extend(v)
         self.backwards += other.backwards
+        self.notices += other.notices
         for k, (a, b) in other.per_file.items():
             cur = self.per_file.setdefault(k, [0, 0])
             cur[0] += a
@@ -94,6 +96,9 @@ class Route:
                 b.readings += 1
                 b.touched.add(r.characteristic)
                 b.values.setdefault(r.characteristic, []).append((r.value, r.time))
+                if m.notices:
+                    b.notices += [(r.characteristic, text) for text in m.notices]
+                    m.notices = []
         return b
 
 
