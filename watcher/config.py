@@ -128,6 +128,7 @@ class EpisodeSettings:
     escalate_factor: float = 100.0
     alert_on_close: bool = False
     projection_hours: float = 8.0
+    p_escalations: int = 2
 
 
 @dataclass
@@ -308,6 +309,12 @@ def _positive_int(v: Any) -> int:
     return v
 
 
+def _count(v: Any) -> int:
+    if isinstance(v, bool) or not isinstance(v, int) or v < 0:
+        raise ValueError("a whole number of at least 0")
+    return v
+
+
 def _string(v: Any) -> str:
     if not isinstance(v, str) or not v.strip():
         raise TypeError
@@ -382,7 +389,8 @@ _ALERT = {
     "quiet_hours": None, "max_per_hour": None,
 }
 _DIGEST = {"at": None, "to": None, "folder": None, "retention_days": None}
-_EPISODES = {"close_after": None, "escalate_factor": None, "alert_on_close": None, "projection_hours": None}
+_EPISODES = {"close_after": None, "escalate_factor": None, "alert_on_close": None, "projection_hours": None,
+             "p_escalations": None}
 _DELIVERY = {"retry_first": None, "retry_max": None, "expire_after": None, "timeout": None}
 
 
@@ -489,6 +497,7 @@ def _build(ck: _Checker, top: Any, file: str) -> Config:
                 escalate_factor=ck.get(e, "escalate_factor", p, _gt1, "a number above 1", 100.0),
                 alert_on_close=ck.get(e, "alert_on_close", p, _boolean, "true or false", False),
                 projection_hours=ck.get(e, "projection_hours", p, _positive, "a positive number", 8.0),
+                p_escalations=ck.get(e, "p_escalations", p, _count, "a whole number", 2),
             )
     if m.get("delivery") is not None:
         d = ck.mapping(m["delivery"], ("delivery",), _DELIVERY)

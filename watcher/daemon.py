@@ -25,6 +25,7 @@ from typing import Any, Callable
 
 from watcher.config import Config, SourceConfig
 from watcher.log import LOGGER, event
+from watcher.parse import reason_kind
 from watcher.records import Finding
 from watcher.route import Batch, Route
 from watcher.store import Store, utc_now
@@ -346,7 +347,7 @@ class Daemon:
 
     def _log_batch(self, feed: _Feed, batch: Batch) -> None:
         for q in batch.quarantined:
-            key = (q.file or "", q.reason.split(":")[0])
+            key = (q.file or "", reason_kind(q.reason))
             feed.bad_counts[key] += 1
             if key not in feed.bad_seen:
                 feed.bad_seen.add(key)

@@ -115,6 +115,9 @@ class EpisodeSettings:
     close_after: int = MIN_CLOSE_AFTER
     close_after_by_characteristic: dict[str, int] = field(default_factory=dict)
     pvalue_factor: float = 100.0
+    # Stronger evidence alone is news this many times per episode; after that only a reading
+    # beyond specification or a rise in severity is (a lasting shift would otherwise keep talking).
+    max_p_escalations: int = 2
     alert_on_close: bool = False
     urgent_horizon_hours: float = 8.0
     clock: Callable[[], datetime] = field(default=lambda: datetime.now(timezone.utc))
@@ -444,6 +447,7 @@ class EpisodeBook:
                 p is not None
                 and ep.last_alert_p is not None
                 and p * self.settings.pvalue_factor <= ep.last_alert_p
+                and (news or ep.alerts <= self.settings.max_p_escalations)
             ):
                 news.append(
                     f"Stronger evidence: p fell from {alert_text.pval(ep.last_alert_p)} "

@@ -608,6 +608,7 @@ def episode_settings_from_config(cfg: Any, largest_windows: dict[str, int] | Non
         pvalue_factor=float(getattr(e, "escalate_factor", 100.0)),
         alert_on_close=bool(getattr(e, "alert_on_close", False)),
         urgent_horizon_hours=float(getattr(e, "projection_hours", 8.0)),
+        max_p_escalations=int(getattr(e, "p_escalations", 2)),
     )
 
 

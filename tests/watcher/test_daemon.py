@@ -272,7 +272,6 @@ def test_mqtt_source_through_the_daemon(tmp_path):
             "characteristics:\n  - {name: zone_temp, source: oven, column: temp_c, baseline: {readings: 40}}\n"
         )
         with Running(cfgp) as r:
-            r.cfg.characteristics[0]  # noqa: B018 - the config parsed
             pub = mqtt.Client(CallbackAPIVersion.VERSION2)
             for _ in range(50):
                 try:
@@ -281,7 +280,10 @@ def test_mqtt_source_through_the_daemon(tmp_path):
                 except OSError:
                     time.sleep(0.1)
             pub.loop_start()
-            time.sleep(1.0)  # let the daemon's subscription land
+            t0 = time.time()  # wait until the daemon's subscription has landed at the broker
+            while time.time() - t0 < 20 and not (r.daemon.feeds and r.daemon.feeds[0].reader.subscribed.is_set()):
+                time.sleep(0.05)
+            assert r.daemon.feeds[0].reader.subscribed.is_set()
             vals = 180 + np.random.default_rng(2).normal(size=60)
             for i, v in enumerate(vals):
                 payload = json.dumps({"t": 1767337200 + i, "temp_c": round(float(v), 3)}) if i % 2 else f"{v:.3f}"

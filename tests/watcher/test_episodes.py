@@ -105,7 +105,7 @@ def test_long_pattern_gives_one_opening_and_one_escalation_per_news(conn):
 
 
 def test_pvalue_escalation_factor_100(conn):
-    book = EpisodeBook(conn, EpisodeSettings(close_after=100, pvalue_factor=100))
+    book = EpisodeBook(conn, EpisodeSettings(close_after=100, pvalue_factor=100, max_p_escalations=3))
     # Hand-derived: alerted at 1e-3; 1.1e-5 is not <= 1e-3/100 = 1e-5; 9e-6 is
     # (alert 2, new reference 9e-6); 1e-7 is not <= 9e-8; 8e-8 is (alert 3);
     # 1e-9 is not <= 8e-10; 5e-10 is (alert 4).
@@ -119,6 +119,18 @@ def test_pvalue_escalation_factor_100(conn):
     ep = get_episode(conn, intents[0].episode_id)
     assert ep.last_alert_p == pytest.approx(5e-10)
     assert ep.min_p == pytest.approx(5e-10)
+
+
+def test_pvalue_escalations_are_capped(conn):
+    book = EpisodeBook(conn, EpisodeSettings(close_after=100, pvalue_factor=100))  # default: 2 of them
+    ps = [1e-3, 9e-6, 8e-8, 5e-10, 1e-14]
+    intents = []
+    for k, p in enumerate(ps):
+        intents += book.on_finding(finding(100 + 10 * k, p=p), SPEC)
+    assert [i.finding_index for i in intents] == [100, 110, 120]
+    # A reading beyond specification is still news after the cap.
+    oos = book.on_finding(finding(200, "out_of_spec", value=506.0), SPEC)
+    assert [i.kind for i in oos] == ["escalated"]
 
 
 def test_close_after_absence_and_reopen_with_new_id(conn):
