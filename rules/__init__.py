@@ -46,8 +46,16 @@ _BASELINE_TREND_NAMES = [
     "PettittDetector", "pettitt_onset", "pettitt_test", "capability", "capability_from_summary",
 ]  # fmt: skip
 # --- run lengths and calibration (runlength.py, calibrate.py) ---
+from rules.calibrate import FalseAlarmBudget, budget_to_arl0, calibrate, default_detector_set  # noqa: E402
+from rules.runlength import detection_power, simulate_run_lengths  # noqa: E402
+
+_CALIBRATION_NAMES = [
+    "FalseAlarmBudget", "budget_to_arl0", "calibrate", "default_detector_set", "detection_power",
+    "simulate_run_lengths",
+]  # fmt: skip
 
 __all__ = ["PATTERNS", "Signal", "StreamDetector", "DETECTORS"]
 __all__ += _BASELINE_TREND_NAMES
 __all__ += _RUNS_NAMES
 __all__ += _SHIFT_NAMES
+__all__ += _CALIBRATION_NAMES

@@ -164,10 +164,13 @@ class Monitor:
         from rules.baseline import estimate_baseline
 
         raw = self.baseline_values
-        if self.k > 1:
-            b = _subgroup_baseline(raw, self.k)
-        else:
-            b = estimate_baseline(raw)
+        try:
+            b = _subgroup_baseline(raw, self.k) if self.k > 1 else estimate_baseline(raw)
+        except ValueError as e:
+            # Too little left after screening, say: keep the newer half and go on collecting.
+            self.notices.append(f"{self.cc.name}: no baseline yet ({e}); collecting more readings")
+            self.baseline_values = raw[len(raw) // 2:]
+            return
         self.baseline_values = []
         self._set_baseline(b, raw)
 

@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Any, Iterator, TextIO
 
 from watcher.config import CharacteristicConfig, BaselineConfig, Config, SourceConfig, default_config
-from watcher.parse import to_float
+from watcher.parse import reason_kind, to_float
 from watcher.records import Finding, Quarantined
 from watcher.route import Batch, Route
 
@@ -150,8 +150,19 @@ class ReplayResult:
 
 
 def replay_file(path: Path, cfg: Config, src: SourceConfig, warn: TextIO | None = sys.stderr,
-                progress: Any = None) -> ReplayResult:
-    """Feed every line of ``path`` through a fresh route, as if it had arrived live."""
+                progress: Any = None, engine: str = "fast") -> ReplayResult:
+    """Every line of ``path`` through a fresh route, as if it had arrived live.
+
+    ``engine="fast"`` (default): bulk parsing and vectorised scans (watcher/replay_fast.py),
+    with exactly the findings and quarantined lines of ``engine="live"``, which feeds the
+    lines one by one through :class:`Route` as the daemon does.
+    """
+    if engine == "fast":
+        from watcher.replay_fast import replay_file_fast
+
+        return replay_file_fast(path, cfg, src, warn, progress)
+    if engine != "live":
+        raise ValueError(f"engine must be 'fast' or 'live', got {engine!r}")
     if not path.exists():
         raise UnusableInput(f"{path}: no such file")
     if path.is_dir():
@@ -165,7 +176,7 @@ def replay_file(path: Path, cfg: Config, src: SourceConfig, warn: TextIO | None 
     def flush() -> None:
         b = route.take(src, chunk)
         for q in b.quarantined:
-            reasons[q.reason.split(":")[0]] += 1
+            reasons[reason_kind(q.reason)] += 1
             if warn is not None and sum(reasons.values()) <= SHOW_BAD:
                 print(f"{q.file}:{q.line_no}: skipped: {q.reason}", file=warn)
         total.merge(b)
