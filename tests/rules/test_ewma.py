@@ -24,21 +24,6 @@ from rules.ewma import Ewma, ewma_arl, ewma_L_for_arl, ewma_sd, ewma_signal_prob
 from rules.registry import DETECTORS
 
 
-try:  # small dense matrices: one BLAS thread is much faster on a busy 2-core machine (speed only)
-    from threadpoolctl import threadpool_limits
-except ImportError:  # pragma: no cover - optional
-    threadpool_limits = None
-
-
-@pytest.fixture(autouse=True, scope="module")
-def _one_blas_thread():
-    if threadpool_limits is None:
-        yield
-    else:
-        with threadpool_limits(1):
-            yield
-
-
 def stream(det, xs):
     return [s for v in xs if (s := det.update(float(v))) is not None]
 
