@@ -6,7 +6,8 @@ Three figures from one run, on the same seeded stream (an invented checkweigher,
 N(500 g, 1 g) with a 1.5 g step two thirds of the way):
 
 * ``Monitor.feed``: one characteristic, baseline from the first 100 readings, then the
-  default detector set (watcher/detector_set.py) on every reading, findings included;
+  default detector set calibrated to the default budget (watcher/calibration.py) on
+  every reading, findings included;
 * ``Route.take``: the same readings as CSV lines through the whole live route
   (``LineParser`` -> ``Monitor.feed``), in batches of 500 lines as the daemon takes them;
 * River ``drift.PageHinkley().update`` on the same values (the comparison the target
@@ -43,9 +44,10 @@ def _cc():
 
 
 def bench_feed(x: np.ndarray) -> dict:
+    from watcher.calibration import Calibrator
     from watcher.monitor import Monitor
 
-    m = Monitor(_cc(), "cw")
+    m = Monitor(_cc(), "cw", calibrator=Calibrator())  # calibrated as the daemon runs it (on the baseline, untimed)
     vals = x.tolist()
     for v in vals[:100]:
         m.feed(v)

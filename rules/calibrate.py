@@ -91,7 +91,7 @@ from rules.runlength import (
     normalise_set,
     shewhart_arl,
     shewhart_limit_for_arl0,
-    simulate_run_lengths,
+    simulate_false_finding_rate,
     single_blas_thread,
 )
 
@@ -100,8 +100,10 @@ __all__ = [
     "DEFAULT_ARL0",
     "DEFAULT_WEIGHTS",
     "FalseAlarmBudget",
+    "THRESHOLDS",
     "budget_to_arl0",
     "calibrate",
+    "calibration_key",
     "config_key",
     "default_detector_set",
     "estimated_baseline_inflation",
@@ -110,6 +112,8 @@ __all__ = [
 CALIBRATION_VERSION = 1
 DEFAULT_ARL0 = 10_000.0
 CHAIN_KEYS = ("cusum", "ewma", "shewhart")
+# The parameter calibration sets, by detector key; a set that gives it keeps it (``keep``).
+THRESHOLDS: dict[str, str] = {"cusum": "h", "ewma": "L", "shewhart": "limit", **{k: "alpha" for k in WINDOW_KEYS}}
 # Weights of the budget split (normalised over the detectors present; keys not
 # listed get the mean weight).  Rationale in the module docstring; the figures
 # themselves are our choice, no source.
@@ -123,6 +127,10 @@ DEFAULT_WEIGHTS: dict[str, float] = {
     "updown_runs": 0.07,
 }
 MIN_BASELINE_N = 20
+# Simulated readings for a window the shipped table does not cover: a share of 1e-5 per
+# reading then rests on ~10 signals (+-30 % of that share, a few % of the budget).
+WINDOW_SIM_READINGS = 1_000_000
+UNTUNABLE_READINGS = 100_000  # at most this many simulated readings for a detector calibration cannot tune
 INFLATION_WARN = 3.0
 G_MAX = 1000.0  # largest ARL0 multiplier the adjustment may use  # thresholds set for > 3x their nominal ARL0: the baseline costs real power
 
@@ -229,7 +237,27 @@ def config_key(detector_set: Sequence, arl0_target: float, baseline_n: int | Non
     return hashlib.sha256(text.encode()).hexdigest()
 
 
+def calibration_key(detector_set: Sequence, arl0_target: float, baseline_n: int | None = None, seed: int = 0,
+                    **options: Any) -> str:
+    """:func:`config_key` of a :func:`calibrate` call, with its defaults filled in, so equal
+    calls get equal keys however they were spelt (the ``key`` field of its result).
+
+    >>> calibration_key([("cusum", {})], 500) == calibration_key([("cusum", {})], 500, n_boot=200)
+    True
+    """
+    opts = {"weights": None, "guarantee": 0.9, "n_boot": 200, "sigma_method": "moving_range",
+            "window_readings": None, "verify_streams": 0, **options}
+    opts["keep"] = sorted(opts.get("keep") or ())
+    return config_key(detector_set, arl0_target, baseline_n, seed, **opts)
+
+
 # ------------------------------------------------------------ chain helpers
+
+
+def _chain_defaults(key: str, params: dict[str, Any]) -> dict[str, Any]:
+    """A user-set chain detector's params with its class defaults filled in (for its chain)."""
+    return DETECTORS[key](**params).params()
+
 
 
 def _chain_params(key: str, params: dict[str, Any], arl0: float, fast: bool = False) -> dict[str, Any]:
@@ -295,6 +323,13 @@ def _ewma_batch(lam: float, c: float, mu: np.ndarray, tau: np.ndarray, n: int) -
 def _conditional_rate(key: str, p: dict[str, Any], e: np.ndarray, r: np.ndarray) -> np.ndarray:
     """False-alarm rate (1/ARL) of one chain detector given baseline errors e (mean, in sigma)
     and r (sigma ratio), per bootstrap draw; readings in control."""
+    rate = _conditional_rate_raw(key, p, e, r)
+    # Where a chain's ARL is too large for its linear solve the result is noise (negative,
+    # NaN): such a draw's rate is negligible, so it counts as zero.
+    return np.where(np.isfinite(rate) & (rate > 0), rate, 0.0)
+
+
+def _conditional_rate_raw(key: str, p: dict[str, Any], e: np.ndarray, r: np.ndarray) -> np.ndarray:
     mu = -e / r
     tau = 1.0 / r
     if key == "cusum":
@@ -371,21 +406,38 @@ def _weights(items: list[tuple[str, str, dict[str, Any]]], weights: dict[str, fl
     return {k: v / tot for k, v in raw.items()}
 
 
-def _window_calibration(key: str, params: dict[str, Any], share_rate: float, seed: int, readings: int | None) -> dict[str, Any]:
-    cls = DETECTORS[key]
-    det = cls(**params)
-    w = det.window
-    default_side = all(
-        params.get(name, "both") == "both" for name in ("side", "direction")
-    )
-    table = None
-    if readings is None and default_side:
-        try:
-            from rules.window_rates import TABLE
+def _rate_table(key: str, params: dict[str, Any], readings: int | None) -> dict[str, Any] | None:
+    """The shipped simulated rates of a windowed test (rules.window_rates), where they apply."""
+    default_side = all(params.get(name, "both") == "both" for name in ("side", "direction"))
+    if readings is not None or not default_side:
+        return None
+    try:
+        from rules.window_rates import TABLE
+    except ImportError:  # pragma: no cover
+        return None
+    return TABLE.get(f"{key}/{DETECTORS[key](**params).window}")
 
-            table = TABLE.get(f"{key}/{w}")
-        except ImportError:  # pragma: no cover
-            table = None
+
+def _window_rate(key: str, params: dict[str, Any], seed: int, readings: int | None) -> dict[str, Any]:
+    """False-signal rate of a windowed test at the alpha the user set (restarts included)."""
+    alpha = float(DETECTORS[key](**params).alpha)
+    table = _rate_table(key, params, readings)
+    if table is not None and table["alpha"] and alpha <= table["alpha"][-1]:
+        # the rate is a step function of alpha: the count at the largest tabulated alpha not above it
+        below = [i for i, a in enumerate(table["alpha"]) if a <= alpha]
+        K = table["signals"][below[-1]] if below else 0
+        N = table["readings"]
+        source = f"threshold set by the user: kept; rate from table rules.window_rates ({N} simulated readings)"
+    else:
+        null = WindowNull(key, params, readings or 400_000, 20, seed)
+        K, N = null.count(alpha), null.n_readings
+        source = f"threshold set by the user: kept; rate by seeded simulation ({N} readings, seed {seed})"
+    return {"alpha": alpha, "rate": K / N, "rate_se": math.sqrt(max(K, 1)) / N, "signals": int(K), "readings": int(N), "source": source}
+
+
+def _window_calibration(key: str, params: dict[str, Any], share_rate: float, seed: int, readings: int | None) -> dict[str, Any]:
+    det = DETECTORS[key](**params)
+    table = _rate_table(key, params, readings)
     if table is not None and share_rate * table["readings"] >= 5:
         N = table["readings"]
         alphas = table["alpha"]
@@ -398,7 +450,7 @@ def _window_calibration(key: str, params: dict[str, Any], share_rate: float, see
             alpha, K = alphas[0] * 0.5, 0
         source = f"table rules.window_rates ({N} simulated readings)"
     else:
-        N = readings or int(min(max(300.0 / share_rate, 2e5), 4e6))
+        N = readings or int(min(max(300.0 / share_rate, 2e5), WINDOW_SIM_READINGS))
         null = WindowNull(key, {**params, "alpha": min(0.01, det.alpha)}, N, 20, seed)
         alpha, K = null.alpha_for_rate(share_rate)
         N = null.n_readings
@@ -422,6 +474,7 @@ def calibrate(
     sigma_method: str = "moving_range",
     window_readings: int | None = None,
     verify_streams: int = 0,
+    keep: Sequence[str] = (),
 ) -> dict[str, Any]:
     """Set every threshold of ``detector_set`` so that the set's false-finding rate is ``1/arl0_target``.
 
@@ -434,6 +487,10 @@ def calibrate(
     calibrated set (the detectors' own ``scan``) on that many seeded in-control
     streams of ``20 * arl0_target / verify_streams`` readings each (so about 20
     false findings expected in total per stream group... see ``report["verify"]``).
+    ``keep``: labels (or keys) whose threshold (:data:`THRESHOLDS`) was set by the
+    user: their parameters are kept, their rate is computed (chain detectors
+    exactly, windowed tests by simulation) and the rest of the budget is shared by
+    the others.
 
     Returns a JSON-able dict: ``params`` (label -> params), ``detector_set``
     (``[[key, params], ...]``), ``arl0_target``, ``key`` (:func:`config_key`) and
@@ -450,6 +507,7 @@ def calibrate(
         if key not in DETECTORS and key not in CHAIN_KEYS:
             raise ValueError(f"unknown detector key {key!r}; registered: {sorted(DETECTORS)}")
     split = _weights(items, weights)
+    kept = {label for label, key, _ in items if label in keep or key in keep}
     target = 1.0 / float(arl0_target)
     warnings: list[str] = []
     per: dict[str, dict[str, Any]] = {}
@@ -457,9 +515,19 @@ def calibrate(
 
     # 1. windowed tests and fixed detectors
     fixed_rate, fixed_var = 0.0, 0.0
+    few: list[str] = []  # windowed tests whose rate rests on fewer than 20 simulated signals
     for label, key, params in items:
-        if key in WINDOW_KEYS:
-            c = _window_calibration(key, params, split[label] * target, seed, window_readings)
+        if key in CHAIN_KEYS and label in kept:
+            rate = 1.0 / _chain_arl(key, _chain_defaults(key, params))
+            params_out[label] = dict(params)
+            per[label] = {"arl0": 1.0 / rate, "rate": rate, "rate_se": 0.0, "share_target": split[label],
+                          "method": "threshold set by the user: kept; ARL0 from its exact chain"}
+            fixed_rate += rate
+        elif key in WINDOW_KEYS:
+            if label in kept:
+                c = _window_rate(key, params, seed, window_readings)
+            else:
+                c = _window_calibration(key, params, split[label] * target, seed, window_readings)
             params_out[label] = {**params, "alpha": c["alpha"]}
             rate = c["rate"]
             per[label] = {
@@ -471,33 +539,39 @@ def calibrate(
                 "signals": c["signals"],
             }
             if c["signals"] < 20:
-                warnings.append(
-                    f"{label}: only {c['signals']} simulated false signals at the chosen alpha; "
-                    f"its rate is known to about +-{100 / math.sqrt(max(c['signals'], 1)):.0f} %"
-                )
+                few.append(f"{label} {c['signals']}")
             fixed_rate += rate
             fixed_var += c["rate_se"] ** 2
         elif key not in CHAIN_KEYS:
-            sim = simulate_run_lengths([(key, params)], n_streams=1000, seed=seed, per_detector=False)
-            rate = 1.0 / sim.first.mean
-            se = sim.first.se / sim.first.mean**2
+            # Signals per reading over a bounded stretch (restarts included): a detector far rarer
+            # than the budget costs a bounded simulation and a rate known to be small, not hours.
+            n_read = int(min(max(20.0 * arl0_target, 20_000), UNTUNABLE_READINGS))
+            sim = simulate_false_finding_rate([(key, params)], n_streams=20, n_readings=n_read // 20, seed=seed)
+            rate = sim.signals / sim.readings
+            se = math.sqrt(max(sim.signals, 1)) / sim.readings
             params_out[label] = dict(params)
+            why = "threshold set by the user" if label in kept else "not tunable here"
             per[label] = {
-                "arl0": sim.first.mean,
-                "arl0_se": sim.first.se,
+                "arl0": math.inf if rate == 0 else 1.0 / rate,
                 "rate": rate,
                 "rate_se": se,
                 "share_target": split[label],
-                "method": "not tunable here: parameters kept, ARL0 by seeded simulation (1000 streams)",
+                "method": f"{why}: parameters kept, rate by seeded simulation ({sim.readings} readings)",
             }
             fixed_rate += rate
             fixed_var += se * se
-    chain = [(label, key, params) for label, key, params in items if key in CHAIN_KEYS]
+    if few:
+        warnings.append(
+            "the rates of the windowed tests rest on few simulated false signals (" + ", ".join(few) + "): "
+            "each stays within its share of the budget as far as the simulation can tell, but is known only roughly"
+        )
+    chain = [(label, key, params) for label, key, params in items if key in CHAIN_KEYS and label not in kept]
+    kept_chain = [(key, _chain_defaults(key, params)) for label, key, params in items if key in CHAIN_KEYS and label in kept]
     left = target - fixed_rate
     if chain and left <= 0.02 * target:
         raise ValueError(
-            f"the detectors without a chain use {fixed_rate / target:.0%} of the budget "
-            f"(rate {fixed_rate:.3g} per reading against {target:.3g}); lower their weights or alpha"
+            f"the windowed, fixed and user-set detectors use {fixed_rate / target:.0%} of the budget "
+            f"(rate {fixed_rate:.3g} per reading against {target:.3g}); lower their weights, alpha or thresholds"
         )
     if not chain and fixed_rate > target * 1.0001:
         warnings.append(f"the set's rate {fixed_rate:.3g} exceeds the budget {target:.3g} (no chain detector to absorb it)")
@@ -524,6 +598,10 @@ def calibrate(
             warnings.append(f"baseline of {n} readings is below the minimum of {MIN_BASELINE_N}; the budget cannot be trusted")
         n = max(n, 3)
         e, r = _bootstrap_errors(n, int(n_boot), seed, sigma_method)
+        # The user-set chain detectors' rates given the baseline, in place of their nominal rates.
+        fixed_cond = np.full(e.size, fixed_rate)
+        for key, p in kept_chain:
+            fixed_cond += _conditional_rate(key, p, e, r) - 1.0 / _chain_arl(key, p)
         # Conditional rates on a grid of g (thresholds for g x nominal ARL0), interpolated in
         # log-log between grid points, then solved for the guarantee quantile.
         grid = np.geomspace(1.0, G_MAX, 13)
@@ -532,7 +610,7 @@ def calibrate(
             for gi, gv in enumerate(grid):
                 p = _chain_params(key, params, nominal_arl[label] * gv, fast=True)
                 logs[gi] += _conditional_rate(key, p, e, r)
-        logs = np.log(logs + fixed_rate) if chain else np.log(np.full((grid.size, e.size), fixed_rate))
+        logs = np.log(logs + fixed_cond[None, :])
 
         def q_of(g: float) -> float:
             lg = math.log(g) / math.log(G_MAX) * (grid.size - 1)
@@ -556,7 +634,7 @@ def calibrate(
                 else:
                     g_hi = mid
             g = g_hi
-        rates_g = np.full(e.size, fixed_rate)
+        rates_g = fixed_cond.copy()
         ps = {}
         for label, key, params in chain:
             ps[label] = _chain_params(key, params, nominal_arl[label] * g)
@@ -616,14 +694,12 @@ def calibrate(
         "params": params_out,
         "detector_set": [[key, params_out[label]] for label, key, _ in items],
         "report": report,
-        "key": config_key(
+        "key": calibration_key(
             detector_set, arl0_target, baseline_n, seed, weights=weights, guarantee=guarantee, n_boot=n_boot,
-            sigma_method=sigma_method, window_readings=window_readings, verify_streams=verify_streams,
+            sigma_method=sigma_method, window_readings=window_readings, verify_streams=verify_streams, keep=keep,
         ),
     }
     if verify_streams:
-        from rules.runlength import simulate_false_finding_rate
-
         per_stream = int(math.ceil(20.0 * arl0_target))
         v = simulate_false_finding_rate(out["detector_set"], n_streams=int(verify_streams), n_readings=per_stream, seed=seed + 7)
         report["verify"] = {**v.to_dict(), "target_rate": target, "ratio": v.rate / target}

@@ -246,7 +246,12 @@ def shewhart_arl(limit: float, delta: float = 0.0, *, mu: float | None = None, t
 
 
 def _solve_log(f: Callable[[float], float], target: float, lo: float, hi: float) -> float:
-    g = lambda v: math.log(f(v)) - math.log(target)  # noqa: E731
+    def g(v: float) -> float:
+        a = f(v)
+        # Far out in the tail the chain's linear solve loses all precision (a negative or
+        # infinite ARL): such an ARL is far above any target, so count it as "too large".
+        return math.log(a) - math.log(target) if 0 < a < math.inf else 50.0
+
     while g(hi) < 0:
         hi *= 1.5
         if hi > 1e3:

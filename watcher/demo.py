@@ -3,9 +3,8 @@
 What runs is the real thing: :mod:`watcher.line_sim` appends gauge files in
 a temporary folder in accelerated time, :class:`watcher.daemon.Daemon`
 follows them with a generated configuration (real files, the real watcher,
-real SQLite state, the console alert target; the default detector set with
-thresholds from :func:`rules.calibrate.calibrate` for 1 false finding per
-10,000 readings), and at the end the digest is written from that state.  The summary then says which of the injected
+real SQLite state, the console alert target; the default detector set,
+calibrated by the watcher for 1 false finding per 10,000 readings), and at the end the digest is written from that state.  The summary then says which of the injected
 causes were caught, after how many readings and with what p-value, and
 lists any finding in the stretch where the line was in control.
 
@@ -59,9 +58,8 @@ characteristics:
     lsl: 495.0
     usl: 510.0
     window: 50
-    baseline: {{readings: 150}}
+    baseline: {readings: 150}
     readings_per_hour: 360
-    detectors: {pack_detectors}
   - name: pin_diameter
     source: lathe
     column: diameter_mm
@@ -70,9 +68,8 @@ characteristics:
     lsl: 7.985
     usl: 8.015
     window: 30
-    baseline: {{readings: 100}}
+    baseline: {readings: 100}
     readings_per_hour: 120
-    detectors: {pin_detectors}
 
 alerts:
   - url: console://
@@ -84,39 +81,12 @@ digest:
 """
 
 
-DEMO_ARL0 = 10_000  # the budget above as readings between false findings of the whole detector set
-DEMO_SETUP = {"pack_mass": (50, 150), "pin_diameter": (30, 100)}  # window, baseline readings
-
-
-def calibrated_detectors(name: str) -> dict[str, dict[str, Any]]:
-    """The default detector set with thresholds for 1 false finding per ``DEMO_ARL0`` readings.
-
-    :func:`rules.calibrate.calibrate` with the characteristic's window and
-    baseline size (so the estimated-baseline adjustment is included).  The
-    demo writes the result into its configuration, where it can be read.
-    """
-    from rules.calibrate import calibrate, default_detector_set
-
-    window, baseline_n = DEMO_SETUP[name]
-    ds = [(k, {**p, "window": window} if "window" in p else p) for k, p in default_detector_set()]
-    return {k: dict(p) for k, p in calibrate(ds, DEMO_ARL0, baseline_n=baseline_n)["detector_set"]}
-
-
-def _flow(d: dict) -> str:
-    import json
-
-    return json.dumps(d)  # JSON is YAML flow style
-
-
-def write_config(folder: Path, detectors: dict[str, dict] | None = None) -> Path:
-    """Write the demo's configuration; ``detectors`` by characteristic (default: calibrated now)."""
+def write_config(folder: Path) -> Path:
+    """Write the demo's configuration into ``folder``."""
     folder.mkdir(parents=True, exist_ok=True)
     (folder / "data").mkdir(exist_ok=True)
-    if detectors is None:
-        detectors = {name: calibrated_detectors(name) for name in DEMO_SETUP}
     p = folder / "linewatch-demo.yaml"
-    p.write_text(CONFIG.format(pack_detectors=_flow(detectors["pack_mass"]),
-                               pin_detectors=_flow(detectors["pin_diameter"])), encoding="utf-8")
+    p.write_text(CONFIG, encoding="utf-8")
     return p
 
 
@@ -242,6 +212,7 @@ def run(folder: Path, *, speed: float = 1.0, seed: int = DEFAULT_SEED, out: Any 
     """Run the demo in ``folder``; return (summary, digest html path, wall seconds)."""
     from watcher.config import load_config
     from watcher.daemon import Daemon
+    from watcher.calibration import Calibrator
     from watcher.digest import Period
     from watcher.line_sim import LineWriter, simulate
     from watcher.outbox import AlertHook
@@ -253,6 +224,7 @@ def run(folder: Path, *, speed: float = 1.0, seed: int = DEFAULT_SEED, out: Any 
     out.write("linewatch demo: setting the detectors for 1 false finding per 10,000 readings ...")
     out.flush()
     cfg = load_config(write_config(folder))
+    Calibrator.for_config(cfg).prepare(cfg.characteristics)  # what the daemon would do first, timed here
     out.write(f" {_time.monotonic() - t_start:.1f} s\n")
     sim = simulate(seed)
     wall = BASE_WALL_SECONDS / speed

@@ -41,10 +41,16 @@ class Monitor:
     Index 0 is the first reading this characteristic ever received.
     """
 
-    def __init__(self, cc: CharacteristicConfig, source: str, detectors: dict[str, dict[str, Any]] | None = None):
+    def __init__(self, cc: CharacteristicConfig, source: str, detectors: dict[str, dict[str, Any]] | None = None,
+                 calibrator: Any = None):
         self.cc = cc
         self.source = source
+        # Explicit detectors run as given; otherwise a calibrator (watcher.calibration) sets the
+        # thresholds when the baseline is learnt, and without one the detectors' own defaults apply.
         self.spec = detectors if detectors is not None else resolve_detectors(cc)
+        self.calibrator = None if detectors is not None else calibrator
+        self.calibration: Any = None  # watcher.calibration.Calibrated, once calibrated
+        self.measured_per_hour: float | None = None
         self.count = 0
         self.baseline: Any = None  # a rules.baseline.Baseline once learnt
         self.baseline_values: list[float] = []
@@ -81,7 +87,7 @@ class Monitor:
         if self.baseline is None:
             self.baseline_values.append(value)
             if len(self.baseline_values) >= self._baseline_size():
-                self._learn_baseline()
+                self._learn_baseline(list(self.recent_times)[-len(self.baseline_values):])
             return out
         if not self.detectors:
             return out
@@ -126,7 +132,7 @@ class Monitor:
             if n >= need:
                 self.baseline_values = x[:need].tolist()
                 self.count = need
-                self._learn_baseline()
+                self._learn_baseline(None if times is None else list(times[:need]))
                 start = need
             else:
                 start = n
@@ -160,7 +166,8 @@ class Monitor:
             n = max(n // self.k, 20) * self.k
         return n
 
-    def _learn_baseline(self) -> None:
+    def _learn_baseline(self, times: list[str | None] | None = None) -> None:
+        """Learn the baseline from ``baseline_values`` (``times``: their time stamps, for the reading rate)."""
         from rules.baseline import estimate_baseline
 
         raw = self.baseline_values
@@ -172,6 +179,10 @@ class Monitor:
             self.baseline_values = raw[len(raw) // 2:]
             return
         self.baseline_values = []
+        if times:
+            from watcher.calibration import measured_rate
+
+            self.measured_per_hour = measured_rate(times)
         self._set_baseline(b, raw)
 
     def _set_baseline(self, b: Any, raw: list[float] | None = None) -> None:
@@ -191,6 +202,7 @@ class Monitor:
             self.raw_centre, self.raw_sigma = b.centre, b.sigma
         self.watch_start = self.count
         self.warnings = list(b.warnings)
+        self._calibrate()
         self.detectors = {}
         if b.no_spread:
             return  # never divide by a zero sigma; check, status and alerts report it
@@ -326,14 +338,16 @@ class Monitor:
             "recent_times": list(self.recent_times),
             "last_time": self.last_time,
             "last_value": self.last_value,
+            "measured_per_hour": self.measured_per_hour,
+            "calibration": None if self.calibration is None else self.calibration.summary(),
         }
 
     @classmethod
     def from_state(cls, cc: CharacteristicConfig, source: str, state: dict[str, Any],
-                   detectors: dict[str, dict[str, Any]] | None = None) -> "Monitor":
+                   detectors: dict[str, dict[str, Any]] | None = None, calibrator: Any = None) -> "Monitor":
         from rules.baseline import Baseline
 
-        m = cls(cc, source, detectors)
+        m = cls(cc, source, detectors, calibrator)
         if state.get("version") != STATE_VERSION:
             raise ValueError(f"monitor state version {state.get('version')!r} is not supported")
         m.count = state["count"]
@@ -348,6 +362,8 @@ class Monitor:
             m.raw_centre, m.raw_sigma = state["raw_centre"], state["raw_sigma"]
             m.warnings = list(m.baseline.warnings)
             m.watch_start = state["watch_start"]
+            m.measured_per_hour = state.get("measured_per_hour")
+            m._calibrate()  # the same thresholds as before, unless the config (or its budget) changed
             saved = state["detectors"]
             if set(saved) == set(m.spec) and all(saved[k]["params"] == m._expected_params(k) for k in saved):
                 m.detectors = {k: DETECTORS[k].from_state(v) for k, v in saved.items()}
@@ -355,6 +371,16 @@ class Monitor:
                 # The configuration changed: keep the baseline, start the detectors afresh.
                 m._set_baseline(m.baseline)
         return m
+
+    def _calibrate(self) -> None:
+        """Thresholds for the budget, now that the baseline (and so the reading rate) is known."""
+        if self.calibrator is None:
+            return
+        self.calibration = self.calibrator.calibrate(self.cc, self.measured_per_hour)
+        self.spec = self.calibration.spec
+        for w in self.calibration.warnings:
+            if w not in self.warnings:
+                self.warnings.append(w)
 
     def _expected_params(self, key: str) -> dict[str, Any]:
         return DETECTORS[key](**self.spec[key]).params()

@@ -711,12 +711,21 @@ class AlertHook:
         return CharacteristicFacts(unit=cc.unit or "", target=cc.target, lsl=cc.lsl, usl=cc.usl,
                                    centre=m.raw_centre, sigma=m.raw_sigma, source=m.source)
 
-    def _recent(self, m: Any):
-        vals = list(m.recent_values)[-self.chart_points:]
+    def _recent(self, m: Any, f: Any = None, batch: Any = None):
+        """Chart data ending at finding ``f``'s reading: from the batch's readings when the
+        finding lies further back than the monitor keeps (a large batch, catching up after a stop)."""
+        kept = (list(m.recent_values), list(m.recent_times))
+        got = getattr(batch, "values", {}).get(m.cc.name) if batch is not None else None
+        if got and len(got) > len(kept[0]):
+            kept = ([v for v, _ in got], [t for _, t in got])
+        values, times = kept
+        start = m.count - len(values)  # reading index of values[0]
+        end = len(values) if f is None else max(0, min(len(values), f.index + 1 - start))
+        lo = max(0, end - self.chart_points)
+        vals, times = values[lo:end], times[lo:end]
         if not vals:
             return None
-        times = list(m.recent_times)[-len(vals):]
-        return (vals, times if any(t is not None for t in times) else None, m.count - len(vals))
+        return (vals, times if any(t is not None for t in times) else None, start + lo)
 
     def on_batch(self, conn: sqlite3.Connection, batch: Any) -> None:
         book = self.book
@@ -728,7 +737,7 @@ class AlertHook:
             # close what ended before this reading, so a pattern that stopped and came back
             # inside one batch makes two episodes, as it would reading by reading
             intents += book.on_reading(f.characteristic, f.index - 1, None)
-            intents += book.on_finding(f, self._facts(m) if m else None, self._recent(m) if m else None)
+            intents += book.on_finding(f, self._facts(m) if m else None, self._recent(m, f, batch) if m else None)
         sources = set()
         for name in batch.touched:
             m = monitors.get(name)

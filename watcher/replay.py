@@ -150,24 +150,25 @@ class ReplayResult:
 
 
 def replay_file(path: Path, cfg: Config, src: SourceConfig, warn: TextIO | None = sys.stderr,
-                progress: Any = None, engine: str = "fast") -> ReplayResult:
+                progress: Any = None, engine: str = "fast", calibrator: Any = None) -> ReplayResult:
     """Every line of ``path`` through a fresh route, as if it had arrived live.
 
     ``engine="fast"`` (default): bulk parsing and vectorised scans (watcher/replay_fast.py),
     with exactly the findings and quarantined lines of ``engine="live"``, which feeds the
-    lines one by one through :class:`Route` as the daemon does.
+    lines one by one through :class:`Route` as the daemon does.  Both take their thresholds
+    from ``calibrator`` (default: the config's, :class:`watcher.calibration.Calibrator`).
     """
     if engine == "fast":
         from watcher.replay_fast import replay_file_fast
 
-        return replay_file_fast(path, cfg, src, warn, progress)
+        return replay_file_fast(path, cfg, src, warn, progress, calibrator=calibrator)
     if engine != "live":
         raise ValueError(f"engine must be 'fast' or 'live', got {engine!r}")
     if not path.exists():
         raise UnusableInput(f"{path}: no such file")
     if path.is_dir():
         raise UnusableInput(f"{path}: is a folder, not a file")
-    route = Route(cfg)
+    route = Route(cfg, calibrator=calibrator)
     total = Batch()
     lines = 0
     reasons: Counter = Counter()

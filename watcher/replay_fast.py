@@ -208,7 +208,7 @@ class SeriesScan:
                 return
             m.baseline_values = h.values[:need].tolist()
             m.count = need
-            m._learn_baseline()
+            m._learn_baseline(h.times[:need].tolist())
             self._make_tracks()
         ws = self.watch_start
         assert ws is not None
@@ -293,9 +293,9 @@ def _moved(sig: Any, shift: int) -> Any:
 class _Sink:
     """Readings of every characteristic of one file, by characteristic, in line order."""
 
-    def __init__(self, cfg: Config, src: SourceConfig, chunk: int):
+    def __init__(self, cfg: Config, src: SourceConfig, chunk: int, calibrator: Any = None):
         self.chars = cfg.characteristics_of(src.name)
-        self.scans = {c.name: SeriesScan(Monitor(c, c.source), chunk) for c in self.chars}
+        self.scans = {c.name: SeriesScan(Monitor(c, c.source, calibrator=calibrator), chunk) for c in self.chars}
         self.order = {c.name: j for j, c in enumerate(self.chars)}
         self.readings = 0
         self.touched: set[str] = set()
@@ -573,8 +573,11 @@ def _gather(arr: np.ndarray, fs: np.ndarray, ln: np.ndarray) -> np.ndarray:
 
 def replay_file_fast(path: Path, cfg: Config, src: SourceConfig, warn: TextIO | None = sys.stderr,
                      progress: Callable[[int], Any] | None = None, *, block_bytes: int = BLOCK_BYTES,
-                     chunk: int = CHUNK):
+                     chunk: int = CHUNK, calibrator: Any = None):
     """Every line of ``path`` through bulk parsing and the detectors' vectorised scans.
+
+    Thresholds come from ``calibrator`` (default: the config's, with its disk cache),
+    the same as the live route's.
 
     Returns a :class:`watcher.replay.ReplayResult` equal to the live route's (findings,
     quarantined lines, counts); ``Batch.values`` and ``Batch.backwards`` stay empty.
@@ -589,7 +592,11 @@ def replay_file_fast(path: Path, cfg: Config, src: SourceConfig, warn: TextIO | 
     cols = [Column(c.name, c.column) for c in cfg.characteristics_of(src.name)]
     parser = LineParser(src.name, src.format, cols, time_column=src.time_column, delimiter=src.delimiter,
                         decimal=src.decimal, encoding=src.encoding, file=name)
-    sink = _Sink(cfg, src, chunk)
+    if calibrator is None:
+        from watcher.calibration import Calibrator
+
+        calibrator = Calibrator.for_config(cfg)
+    sink = _Sink(cfg, src, chunk, calibrator)
     reader = _CsvBlocks(parser, src, sink)
     reasons: Counter = Counter()
     shown = 0

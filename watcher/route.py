@@ -54,15 +54,19 @@ class Batch:
 
 
 class Route:
-    def __init__(self, cfg: Config, states: dict[str, dict[str, Any]] | None = None):
+    def __init__(self, cfg: Config, states: dict[str, dict[str, Any]] | None = None, calibrator: Any = None):
+        from watcher.calibration import Calibrator
+
         self.cfg = cfg
+        self.calibrator = calibrator or Calibrator.for_config(cfg)
+        self.calibrator.prepare(cfg.characteristics)
         self.monitors: dict[str, Monitor] = {}
         states = states or {}
         for cc in cfg.characteristics:
             if cc.name in states:
-                self.monitors[cc.name] = Monitor.from_state(cc, cc.source, states[cc.name])
+                self.monitors[cc.name] = Monitor.from_state(cc, cc.source, states[cc.name], calibrator=self.calibrator)
             else:
-                self.monitors[cc.name] = Monitor(cc, cc.source)
+                self.monitors[cc.name] = Monitor(cc, cc.source, calibrator=self.calibrator)
         self.parsers: dict[tuple[str, str], LineParser] = {}
 
     def parser(self, src: SourceConfig, path: str, header: list[str] | None = None) -> LineParser:

@@ -71,9 +71,11 @@ def test_summary_attributes_findings_to_causes():
 
 
 def _offline_findings(cfg, sim):
+    from watcher.calibration import Calibrator
+
     out = []
     for cc, vals, secs in ((cfg.characteristics[0], sim.pack, sim.pack_s), (cfg.characteristics[1], sim.pin, sim.pin_s)):
-        m = Monitor(cc, cc.source)
+        m = Monitor(cc, cc.source, calibrator=Calibrator.for_config(cfg))
         for v in vals:
             # the files carry values rounded as the gauges write them
             v = round(float(v), 2) if cc.name == "pack_mass" else round(float(v), 5)

@@ -17,6 +17,19 @@ def test_nothing_when_not_a_terminal(tmp_path):
     assert progress_for(10_000, io.StringIO()) is None
 
 
+def _read_all(fd: int) -> str:
+    """Everything written to the pty so far: one read may return only part of it."""
+    import select
+
+    data = b""
+    while select.select([fd], [], [], 0.5)[0]:
+        chunk = os.read(fd, 10_000)
+        if not chunk:
+            break
+        data += chunk
+    return data.decode()
+
+
 def test_a_bar_on_a_terminal():
     master, slave = os.openpty()
     try:
@@ -25,7 +38,7 @@ def test_a_bar_on_a_terminal():
             assert isinstance(p, Progress)
             p(5_000, 250_000)
             p.close()
-        out = os.read(master, 10_000).decode()
+        out = _read_all(master)
     finally:
         os.close(master)
         os.close(slave)

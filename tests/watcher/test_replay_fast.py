@@ -20,6 +20,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from watcher.calibration import AsConfigured
 from watcher.config import BaselineConfig, CharacteristicConfig, SourceConfig, default_config
 from watcher.monitor import Monitor
 from watcher.replay import replay_file
@@ -151,8 +152,10 @@ def test_fast_replay_equals_live(tmp_path_factory, s, window, chunk, block, limi
     _write(p, s)
     mid = float(np.median(s["x"]))
     cfg, src = _config(s["time_kind"] != "none", window, (mid - 2.5, mid + 2.5) if limits else None)
-    live = replay_file(p, cfg, src, warn=None, engine="live")
-    fast = replay_file_fast(p, cfg, src, warn=None, block_bytes=block, chunk=chunk)
+    # Thresholds as configured (class defaults): frequent signals test the engines harder than
+    # calibrated ones would; tests/watcher/test_calibration.py compares them calibrated.
+    live = replay_file(p, cfg, src, warn=None, engine="live", calibrator=AsConfigured())
+    fast = replay_file_fast(p, cfg, src, warn=None, block_bytes=block, chunk=chunk, calibrator=AsConfigured())
     _same(live, fast)
 
 
@@ -167,8 +170,8 @@ def test_a_known_stream_has_findings_and_bad_lines(tmp_path):
     p = tmp_path / "line.csv"
     _write(p, s)
     cfg, src = _config(True, 20, None)
-    live = replay_file(p, cfg, src, warn=None, engine="live")
-    fast = replay_file(p, cfg, src, warn=None)  # the default engine is the fast one
+    live = replay_file(p, cfg, src, warn=None, engine="live", calibrator=AsConfigured())
+    fast = replay_file(p, cfg, src, warn=None, calibrator=AsConfigured())  # the default engine is the fast one
     _same(live, fast)
     shifts = [f for f in fast.findings if f.characteristic == "mass" and f.pattern == "shift"]
     assert shifts and min(f.index for f in shifts) >= 300
@@ -187,8 +190,8 @@ def test_jsonl_fast_equals_live(tmp_path):
     src = SourceConfig(name="lathe", path=str(p), format="jsonl", time_column="t")
     cc = CharacteristicConfig(name="d", source="lathe", column="d", window=30, baseline=BaselineConfig(readings=50))
     cfg = replace(default_config(), sources=[src], characteristics=[cc])
-    live = replay_file(p, cfg, src, warn=None, engine="live")
-    fast = replay_file_fast(p, cfg, src, warn=None, block_bytes=700, chunk=33)
+    live = replay_file(p, cfg, src, warn=None, engine="live", calibrator=AsConfigured())
+    fast = replay_file_fast(p, cfg, src, warn=None, block_bytes=700, chunk=33, calibrator=AsConfigured())
     _same(live, fast)
     assert any(f.pattern == "drift" for f in fast.findings)
     assert len(fast.batch.quarantined) == 2
