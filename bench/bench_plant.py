@@ -129,7 +129,7 @@ class RunningDaemon:
 
     def __exit__(self, *exc):
         self.stop.set()
-        self.thread.join(30)
+        self.thread.join(600)  # the final pass must commit before the temporary folder goes
 
 
 def run(quick: bool = False, seconds: float | None = None, files: int = 50, columns: int = 20,
