@@ -39,7 +39,8 @@ def _child(path: str) -> None:
 
         p = Path(path)
         cfg, src = config_for_file(p, None)
-        readings = replay_file(p, cfg, src, warn=None).batch.readings
+        # findings handed over as they become final, as `linewatch replay --json` does
+        readings = replay_file(p, cfg, src, warn=None, on_finding=lambda f: None).batch.readings
     rss = _peak_kb()
     print(json.dumps({"maxrss_kb": rss, "readings": readings, "wall_s": time.perf_counter() - w0}))
 

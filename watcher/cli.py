@@ -112,7 +112,11 @@ def _cmd_replay(args: argparse.Namespace) -> int:
             raise UnusableInput(f"{path}: no such file")
         run_cfg, src = config_for_file(path, cfg, source=args.source, columns=args.column,
                                        time_column=args.time_column, baseline=args.baseline)
-        result = replay_file(path, run_cfg, src)
+        sink = _ReplaySink(args.state, args.json)
+        try:
+            result = replay_file(path, run_cfg, src, on_finding=sink.take)
+        finally:
+            sink.close()
     except UnusableInput as e:
         print(f"cannot replay: {e}", file=sys.stderr)
         return EXIT_BAD_INPUT
@@ -121,19 +125,55 @@ def _cmd_replay(args: argparse.Namespace) -> int:
 
         store = Store(args.state)
         with store.transaction() as tx:
-            store.add_findings(tx, result.findings)
             store.add_quarantined(tx, result.batch.quarantined)
-        store.sync_jsonl()
         store.close()
-    if args.json:
-        out = sys.stdout
-        for f in result.findings:
-            out.write(json.dumps(f.record()) + "\n")
-    else:
-        print(format_table(result.findings))
-        print(f"\n{result.lines} lines, {result.batch.readings} readings, {len(result.findings)} findings, "
+    if not args.json:
+        print(format_table(sink.kept))
+        print(f"\n{result.lines} lines, {result.batch.readings} readings, {sink.count} findings, "
               f"{len(result.batch.quarantined)} lines skipped", file=sys.stderr)
     return EXIT_OK
+
+
+class _ReplaySink:
+    """Where ``replay`` puts each finding as it becomes final: JSON lines on stdout and the
+    ``--state`` store as they come (flat memory on long files); the table keeps them for the end."""
+
+    STORE_EVERY = 1000
+
+    def __init__(self, state: str | None, as_json: bool):
+        self.as_json = as_json
+        self.kept: list = []
+        self.pending: list = []
+        self.count = 0
+        self.store = None
+        if state:
+            from watcher.store import Store
+
+            self.store = Store(state)
+
+    def take(self, f) -> None:
+        self.count += 1
+        if self.as_json:
+            sys.stdout.write(json.dumps(f.record()) + "\n")
+        else:
+            self.kept.append(f)
+        if self.store is not None:
+            self.pending.append(f)
+            if len(self.pending) >= self.STORE_EVERY:
+                self._store()
+
+    def _store(self) -> None:
+        with self.store.transaction() as tx:
+            self.store.add_findings(tx, self.pending)
+        self.pending = []
+
+    def close(self) -> None:
+        if self.store is not None:
+            if self.pending:
+                self._store()
+            self.store.sync_jsonl()
+            self.store.close()
+            self.store = None
 
 
 def _cmd_run(args: argparse.Namespace) -> int:

@@ -150,18 +150,21 @@ class ReplayResult:
 
 
 def replay_file(path: Path, cfg: Config, src: SourceConfig, warn: TextIO | None = sys.stderr,
-                progress: Any = None, engine: str = "fast", calibrator: Any = None) -> ReplayResult:
+                progress: Any = None, engine: str = "fast", calibrator: Any = None,
+                on_finding: Any = None) -> ReplayResult:
     """Every line of ``path`` through a fresh route, as if it had arrived live.
 
     ``engine="fast"`` (default): bulk parsing and vectorised scans (watcher/replay_fast.py),
     with exactly the findings and quarantined lines of ``engine="live"``, which feeds the
     lines one by one through :class:`Route` as the daemon does.  Both take their thresholds
     from ``calibrator`` (default: the config's, :class:`watcher.calibration.Calibrator`).
+    With ``on_finding`` every finding is handed over once final, in order, and not kept
+    (``findings`` is then empty): memory stays flat on a long file.
     """
     if engine == "fast":
         from watcher.replay_fast import replay_file_fast
 
-        return replay_file_fast(path, cfg, src, warn, progress, calibrator=calibrator)
+        return replay_file_fast(path, cfg, src, warn, progress, calibrator=calibrator, on_finding=on_finding)
     if engine != "live":
         raise ValueError(f"engine must be 'fast' or 'live', got {engine!r}")
     if not path.exists():
@@ -176,6 +179,10 @@ def replay_file(path: Path, cfg: Config, src: SourceConfig, warn: TextIO | None 
 
     def flush() -> None:
         b = route.take(src, chunk)
+        if on_finding is not None:  # a batch's findings are final when it is taken
+            for f in b.findings:
+                on_finding(f)
+            b.findings = []
         for q in b.quarantined:
             reasons[reason_kind(q.reason)] += 1
             if warn is not None and sum(reasons.values()) <= SHOW_BAD:

@@ -43,10 +43,14 @@ allow more:
 For those, signals found from a later start carry positions relative to that start; they
 are moved back (``onset_index`` and the ``window_start`` detail).  Detectors outside
 both lists (CUSUM, EWMA, the zone rules, any new one) keep everything since their last
-signal: with in-control data that is a few hundred readings; if one never fires, its
-region grows to the whole series (memory as a whole-series scan) and it is re-scanned
-only when the new data is at least as long as the region already scanned (amortised
-cost at most twice one scan).  The look-back for onset times and sizes is bounded by
+signal: with thresholds calibrated to a budget of one false finding per tens of thousands
+of readings, an in-control characteristic's region grows to most of the series (memory as
+a whole-series scan, about 40 bytes per reading; the reason replay memory is not yet flat)
+and it is re-scanned only when the new data is at least as long as the region already
+scanned (amortised cost at most twice one scan).  Scans that start from a carried state
+would remove this; they are not written yet (the p-values depend on the time since the
+restart, so the state is more than the statistics).  Findings themselves need not be
+kept: with ``on_finding`` each is handed over once no later reading can precede it.  The look-back for onset times and sizes is bounded by
 ``Monitor.keep`` exactly as the live deques are.
 
 Not carried over from the live batch: ``Batch.values`` (the digest's per-reading values)
@@ -163,15 +167,38 @@ class SeriesScan:
                 self._step(final=False)
 
     def finish(self) -> list[tuple[int, int, Finding]]:
-        """[(line number, rank, finding)] in the order the live monitor emits them."""
+        """[(line number, rank, finding)] in the order the live monitor emits them
+        (those not already taken by :meth:`take_before`)."""
         self._step(final=True)
         m = self.m
         m.count = self.n
         if len(self.hist.values):
             m.last_value = float(self.hist.values[-1])
             m.last_time = self.hist.times[-1]
+        return self.take_before(None)
+
+    def final_line(self, next_line: int) -> int:
+        """The first line that may still get a finding: every finding on an earlier line is final.
+
+        A track's later findings lie at or after the reading its last scan ended at (the scans
+        are prefix-stable), the specification check and the baseline only see new readings, and
+        readings still queued come from their own lines; ``next_line`` is the first line not read.
+        """
+        first = min([self.n] + [tr.scanned_to for tr in self.tracks])
+        if first < self.n:
+            return int(self.lines[first - self.hist.base])
+        if self.pending:
+            return int(self.pending[0][2][0])
+        return next_line
+
+    def take_before(self, line: int | None) -> list[tuple[int, int, Finding]]:
+        """Remove and return, in order, the findings on lines before ``line`` (None: all)."""
         self.found.sort(key=lambda t: (t[0], t[1], t[2]))
-        return [(ln, rank, f) for (_, rank, _, f, ln) in self.found]
+        k = len(self.found) if line is None else next((j for j, t in enumerate(self.found) if t[4] >= line),
+                                                      len(self.found))
+        out = [(ln, rank, f) for (_, rank, _, f, ln) in self.found[:k]]
+        del self.found[:k]
+        return out
 
     # -- one step: the queued readings through spec limits, baseline and detectors ----------
     def _step(self, final: bool) -> None:
@@ -307,12 +334,23 @@ class _Sink:
             self.scans[name].add(values, times, lines)
 
     def findings(self) -> list[Finding]:
-        allf: list[tuple[int, int, int, Finding]] = []
+        """The findings not yet taken, after the last reading, in the live route's order."""
+        return self.take_final(None, finish=True)
+
+    def take_final(self, next_line: int | None, finish: bool = False) -> list[Finding]:
+        """Findings no later reading can precede (all with ``finish``), in the live route's order:
+        by line, then characteristic, then the characteristic's own order."""
+        if finish:
+            limit = None
+        else:
+            limit = min((sc.final_line(next_line) for sc in self.scans.values()), default=next_line)
+        got: list[tuple[int, int, int, Finding]] = []
         for name, sc in self.scans.items():
+            taken = sc.finish() if finish else sc.take_before(limit)
             col = self.order[name]
-            allf += [(ln, col, k, f) for k, (ln, _rank, f) in enumerate(sc.finish())]
-        allf.sort(key=lambda t: (t[0], t[1], t[2]))
-        return [t[3] for t in allf]
+            got += [(ln, col, k, f) for k, (ln, _rank, f) in enumerate(taken)]
+        got.sort(key=lambda t: (t[0], t[1], t[2]))
+        return [t[3] for t in got]
 
 
 class _Lines:
@@ -573,8 +611,12 @@ def _gather(arr: np.ndarray, fs: np.ndarray, ln: np.ndarray) -> np.ndarray:
 
 def replay_file_fast(path: Path, cfg: Config, src: SourceConfig, warn: TextIO | None = sys.stderr,
                      progress: Callable[[int], Any] | None = None, *, block_bytes: int = BLOCK_BYTES,
-                     chunk: int = CHUNK, calibrator: Any = None):
+                     chunk: int = CHUNK, calibrator: Any = None, on_finding: Callable[[Finding], Any] | None = None):
     """Every line of ``path`` through bulk parsing and the detectors' vectorised scans.
+
+    With ``on_finding``, each finding is handed over as soon as it is final (in the same
+    order) and not kept, so memory stays flat however many there are; ``batch.findings``
+    is then empty.
 
     Thresholds come from ``calibrator`` (default: the config's, with its disk cache),
     the same as the live route's.
@@ -635,11 +677,18 @@ def replay_file_fast(path: Path, cfg: Config, src: SourceConfig, warn: TextIO | 
             report()
             if progress is not None:
                 progress(sink.readings - before)
+            if on_finding is not None:
+                for f in sink.take_final(lines + 1):
+                    on_finding(f)
             if not got:
                 break
     batch = Batch()
     batch.readings = sink.readings
     batch.findings = sink.findings()
+    if on_finding is not None:
+        for f in batch.findings:
+            on_finding(f)
+        batch.findings = []
     batch.quarantined = reader.quarantined
     batch.touched = sink.touched
     if lines:

@@ -157,6 +157,12 @@ def test_fast_replay_equals_live(tmp_path_factory, s, window, chunk, block, limi
     live = replay_file(p, cfg, src, warn=None, engine="live", calibrator=AsConfigured())
     fast = replay_file_fast(p, cfg, src, warn=None, block_bytes=block, chunk=chunk, calibrator=AsConfigured())
     _same(live, fast)
+    # handed over as they become final (flat memory): the same findings in the same order
+    streamed = []
+    rest = replay_file_fast(p, cfg, src, warn=None, block_bytes=block, chunk=chunk, calibrator=AsConfigured(),
+                            on_finding=streamed.append)
+    assert rest.findings == []
+    assert [f.to_dict() for f in streamed] == [f.to_dict() for f in live.findings]
 
 
 def test_a_known_stream_has_findings_and_bad_lines(tmp_path):
@@ -224,3 +230,22 @@ def test_unusable_paths(tmp_path):
         replay_file_fast(tmp_path, cfg, src, warn=None)
     with pytest.raises(ValueError, match="engine"):
         replay_file(tmp_path / "x.csv", cfg, src, warn=None, engine="quick")
+
+
+def test_findings_are_handed_over_while_the_file_is_still_being_read(tmp_path):
+    """Flat memory: with on_finding, a finding early in a long file arrives before the last block is read."""
+    rng = np.random.default_rng(3)
+    x = 10 + rng.normal(0, 1, 20_000)
+    x[300:] += 2.0  # a step early in the file
+    p = tmp_path / "long.csv"
+    p.write_text("mass\n" + "".join(f"{v:.4f}\n" for v in x))
+    cc = CharacteristicConfig(name="mass", source="line", column="mass", window=20, baseline=BaselineConfig(readings=100))
+    cfg = replace(default_config(), sources=[SourceConfig(name="line", path=str(p))], characteristics=[cc])
+    events = []
+    rest = replay_file_fast(p, cfg, cfg.sources[0], warn=None, block_bytes=4096, chunk=1000,
+                            progress=lambda n: events.append("block"),
+                            on_finding=lambda f: events.append(f.index))
+    first = next(j for j, e in enumerate(events) if e != "block")
+    assert rest.findings == [] and "block" in events[first:]  # not all held back to the end
+    found = [e for e in events if e != "block"]
+    assert found == sorted(found) and found[0] >= 300
