@@ -39,7 +39,10 @@ def read_status(cfg: Config) -> dict[str, Any]:
                 "baseline": None if baseline is None else {
                     k: baseline.get(k) for k in ("centre", "sigma", "n", "transform", "distribution_free_only", "no_spread")
                 },
-                "warnings": list((baseline or {}).get("warnings") or []),
+                "warnings": list((baseline or {}).get("warnings") or [])
+                + list(((state or {}).get("calibration") or {}).get("warnings") or []),
+                # thresholds, budget and reading rate (measured or configured) the detectors run with
+                "calibration": (state or {}).get("calibration"),
                 "findings": counts.get(cc.name, 0),
                 "open_episodes": open_eps.get(cc.name, []),
             }

@@ -199,3 +199,32 @@ characteristics:
     assert means == sorted(means, reverse=True) and means[-1] < 10  # bigger steps are found sooner
     text = format_check(r)
     assert "readings to detect a step of" in text and "cusum h" in text and "1 false finding per 2,592,000 readings" in text
+
+
+def test_status_and_check_use_the_rate_the_running_watcher_measured(tmp_path):
+    """A budget per time with no configured rate: the state's measured rate reaches status and check."""
+    from watcher.check import check_report
+    from watcher.status import read_status
+    from watcher.store import Store
+
+    x, times = _series(300)
+    cfg = parse_config(f"""
+state: {tmp_path / 'state'}
+false_alarms: 1 per 7 days
+sources: [{{name: cw, path: {tmp_path / 'cw.csv'}, time_column: time}}]
+characteristics: [{{name: pack_mass, source: cw, column: mass_g, detectors: {{cusum: {{}}, shewhart: {{}}}}}}]
+""")
+    cc = cfg.characteristics[0]
+    m = Monitor(cc, "cw", calibrator=Calibrator.for_config(cfg))
+    for v, t in zip(x, times):
+        m.feed(float(v), t)
+    store = Store(cfg.state_dir)
+    with store.transaction() as tx:
+        store.save_characteristic(tx, cc.name, "cw", m.export_state(), m.count, m.last_time, m.last_value)
+    store.close()
+    st = read_status(cfg)["characteristics"]["pack_mass"]
+    assert st["calibration"]["readings_per_hour"] == pytest.approx(1800)
+    c = check_report(cfg, power=False)["characteristics"][0]
+    assert c["calibration"]["arl0"] == pytest.approx(7 * 24 * 1800)
+    assert c["calibration"]["rate_origin"].startswith("measured")
+    assert c["detectors"]["cusum"]["h"] == m.spec["cusum"]["h"]
