@@ -259,7 +259,6 @@ def _chain_defaults(key: str, params: dict[str, Any]) -> dict[str, Any]:
     return DETECTORS[key](**params).params()
 
 
-
 def _chain_params(key: str, params: dict[str, Any], arl0: float, fast: bool = False) -> dict[str, Any]:
     """Params of a chain-calibrated detector whose known-parameter ARL0 is ``arl0``
     (``fast``: coarser chains, relative ARL error ~1e-4, for the bootstrap grid)."""
@@ -508,6 +507,9 @@ def calibrate(
             raise ValueError(f"unknown detector key {key!r}; registered: {sorted(DETECTORS)}")
     split = _weights(items, weights)
     kept = {label for label, key, _ in items if label in keep or key in keep}
+    # user-set chain detectors, with their class defaults filled in for the chains
+    kept_chain = {label: (key, _chain_defaults(key, params)) for label, key, params in items
+                  if key in CHAIN_KEYS and label in kept}
     target = 1.0 / float(arl0_target)
     warnings: list[str] = []
     per: dict[str, dict[str, Any]] = {}
@@ -517,8 +519,8 @@ def calibrate(
     fixed_rate, fixed_var = 0.0, 0.0
     few: list[str] = []  # windowed tests whose rate rests on fewer than 20 simulated signals
     for label, key, params in items:
-        if key in CHAIN_KEYS and label in kept:
-            rate = 1.0 / _chain_arl(key, _chain_defaults(key, params))
+        if label in kept_chain:
+            rate = 1.0 / _chain_arl(*kept_chain[label])
             params_out[label] = dict(params)
             per[label] = {"arl0": 1.0 / rate, "rate": rate, "rate_se": 0.0, "share_target": split[label],
                           "method": "threshold set by the user: kept; ARL0 from its exact chain"}
@@ -566,7 +568,6 @@ def calibrate(
             "each stays within its share of the budget as far as the simulation can tell, but is known only roughly"
         )
     chain = [(label, key, params) for label, key, params in items if key in CHAIN_KEYS and label not in kept]
-    kept_chain = [(key, _chain_defaults(key, params)) for label, key, params in items if key in CHAIN_KEYS and label in kept]
     left = target - fixed_rate
     if chain and left <= 0.02 * target:
         raise ValueError(
@@ -600,7 +601,7 @@ def calibrate(
         e, r = _bootstrap_errors(n, int(n_boot), seed, sigma_method)
         # The user-set chain detectors' rates given the baseline, in place of their nominal rates.
         fixed_cond = np.full(e.size, fixed_rate)
-        for key, p in kept_chain:
+        for key, p in kept_chain.values():
             fixed_cond += _conditional_rate(key, p, e, r) - 1.0 / _chain_arl(key, p)
         # Conditional rates on a grid of g (thresholds for g x nominal ARL0), interpolated in
         # log-log between grid points, then solved for the guarantee quantile.

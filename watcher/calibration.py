@@ -135,26 +135,12 @@ class Calibrator:
         from rules.calibrate import THRESHOLDS, calibrate, calibration_key
 
         chosen = resolve_detectors(cc)
-        budget = cc.false_alarms or self.default_budget
-        warnings: list[str] = []
-        if cc.readings_per_hour:
-            rate, origin = float(cc.readings_per_hour), "configured"
-        elif measured_per_hour:
-            # Three significant figures: a rate measured a little differently must not recalibrate.
-            rate, origin = float(f"{measured_per_hour:.3g}"), "measured from the baseline's time stamps"
-        else:
-            rate, origin = None, "unknown"
-        arl0 = budget.arl0(rate)
-        if arl0 is None:
-            arl0 = float(DEFAULT_FALSE_ALARM_READINGS)
-            warnings.append(f"{cc.name}: the budget '{budget.text()}' needs a reading rate and none is known "
-                            f"(set readings_per_hour, or give the readings a time column); "
-                            f"using 1 per {DEFAULT_FALSE_ALARM_READINGS:,} readings")
-        k = cc.subgroup or 1
-        steps = arl0 / k  # with subgroups the detectors take one value per subgroup
-        baseline_n = None if cc.baseline.fixed else max(cc.baseline.readings // k, 3)
         kept = [key for key, p in chosen.items() if key in THRESHOLDS and THRESHOLDS[key] in p]
-        done = Calibrated(dict(chosen), arl0, budget.text(), rate, origin, kept, warnings)
+        done = self._target(cc, measured_per_hour, chosen)
+        done.kept = kept
+        k = cc.subgroup or 1
+        steps = done.arl0 / k  # with subgroups the detectors take one value per subgroup
+        baseline_n = None if cc.baseline.fixed else max(cc.baseline.readings // k, 3)
         if not chosen or steps <= 1:
             return done
         items = list(chosen.items())
@@ -170,6 +156,26 @@ class Calibrator:
         done.report = res["report"]
         done.warnings += [f"{cc.name}: {w}" for w in res["report"]["warnings"]]
         return done
+
+    def _target(self, cc: CharacteristicConfig, measured_per_hour: float | None,
+                spec: dict[str, dict[str, Any]]) -> Calibrated:
+        """``spec`` as it stands, with the budget as a target ARL0 and where the reading rate came from."""
+        budget = cc.false_alarms or self.default_budget
+        warnings: list[str] = []
+        if cc.readings_per_hour:
+            rate, origin = float(cc.readings_per_hour), "configured"
+        elif measured_per_hour:
+            # Three significant figures: a rate measured a little differently must not recalibrate.
+            rate, origin = float(f"{measured_per_hour:.3g}"), "measured from the baseline's time stamps"
+        else:
+            rate, origin = None, "unknown"
+        arl0 = budget.arl0(rate)
+        if arl0 is None:
+            arl0 = float(DEFAULT_FALSE_ALARM_READINGS)
+            warnings.append(f"{cc.name}: the budget '{budget.text()}' needs a reading rate and none is known "
+                            f"(set readings_per_hour, or give the readings a time column); "
+                            f"using 1 per {DEFAULT_FALSE_ALARM_READINGS:,} readings")
+        return Calibrated(dict(spec), arl0, budget.text(), rate, origin, warnings=warnings)
 
     def detection_power(self, cal: Calibrated, n_streams: int = 1000) -> dict[str, Any] | None:
         """Readings to detect steps and drifts with ``cal``'s detectors (rules.runlength.detection_power),
@@ -220,14 +226,16 @@ def _finite(v: Any) -> Any:
 
 def _write_atomic(path: Path, text: str) -> None:
     """Write via a temporary file and a rename, so a crash never leaves half a cache file."""
+    tmp = None
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".json")
         with os.fdopen(fd, "w") as f:
             f.write(text)
         os.replace(tmp, path)
-    except OSError:
-        pass  # a read-only state folder costs a recalibration next start, nothing more
+    except OSError:  # a read-only or full state folder costs a recalibration next start, nothing more
+        if tmp is not None and os.path.exists(tmp):
+            os.unlink(tmp)
 
 
 class AsConfigured(Calibrator):
@@ -237,8 +245,6 @@ class AsConfigured(Calibrator):
     """
 
     def calibrate(self, cc: CharacteristicConfig, measured_per_hour: float | None = None) -> Calibrated:
-        budget = cc.false_alarms or self.default_budget
-        arl0 = budget.arl0(cc.readings_per_hour or measured_per_hour) or float(DEFAULT_FALSE_ALARM_READINGS)
-        return Calibrated(resolve_detectors(cc), arl0, budget.text(), cc.readings_per_hour or measured_per_hour,
-                          "configured" if cc.readings_per_hour else "unknown",
-                          warnings=[f"{cc.name}: thresholds as configured, not calibrated to the budget"])
+        done = self._target(cc, measured_per_hour, resolve_detectors(cc))
+        done.warnings.append(f"{cc.name}: thresholds as configured, not calibrated to the budget")
+        return done
