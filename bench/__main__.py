@@ -29,6 +29,7 @@ SUITE = ("live", "replay", "memory", "plant", "startup")
 def _rows_live(r: dict) -> list[tuple[str, str, str]]:
     return [
         ("live: default set, us per reading", f"{r['feed_us']:.1f}", f"< {r['target_us']:g}"),
+        ("live: same, characteristic in control", f"{r['feed_in_control_us']:.1f}", f"< {r['target_us']:g}"),
         ("live: PageHinkley (River), us per update", f"{r['pagehinkley_us']:.2f}", ""),
         ("live: ratio to PageHinkley", f"{r['feed_ratio_to_pagehinkley']:.0f}x", f"<= {r['target_ratio']:g}x"),
         ("live: whole route (parse + feed), us per reading", f"{r['route_us']:.1f}", ""),

@@ -7,7 +7,9 @@ N(500 g, 1 g) with a 1.5 g step two thirds of the way):
 
 * ``Monitor.feed``: one characteristic, baseline from the first 100 readings, then the
   default detector set calibrated to the default budget (watcher/calibration.py) on
-  every reading, findings included;
+  every reading, findings included (the step makes a finding about every 15 readings
+  after it, each with its p-value: the figure is mostly their cost); the same again on
+  the stream without the step (the cost of a characteristic in control);
 * ``Route.take``: the same readings as CSV lines through the whole live route
   (``LineParser`` -> ``Monitor.feed``), in batches of 500 lines as the daemon takes them;
 * River ``drift.PageHinkley().update`` on the same values (the comparison the target
@@ -29,10 +31,11 @@ TARGET_US = 20.0
 TARGET_RATIO = 30.0
 
 
-def _stream(n: int, seed: int = 1) -> np.ndarray:
+def _stream(n: int, seed: int = 1, step: bool = True) -> np.ndarray:
     rng = np.random.default_rng(seed)
     x = 500 + rng.normal(0, 1, n)
-    x[2 * n // 3:] += 1.5
+    if step:
+        x[2 * n // 3:] += 1.5
     return x
 
 
@@ -104,12 +107,14 @@ def run(quick: bool = False) -> dict:
     x = _stream(n)
     ph1 = bench_pagehinkley(x)
     feed = bench_feed(x)
+    quiet = bench_feed(_stream(n, step=False))
     route = bench_route(x)
     ph2 = bench_pagehinkley(x)
     ph = min(ph1["us_per_reading"], ph2["us_per_reading"])
     return {
         "readings": n,
-        "feed_us": feed["us_per_reading"], "route_us": route["us_per_reading"], "pagehinkley_us": ph,
+        "feed_us": feed["us_per_reading"], "feed_in_control_us": quiet["us_per_reading"],
+        "in_control_findings": quiet["findings"], "route_us": route["us_per_reading"], "pagehinkley_us": ph,
         "feed_ratio_to_pagehinkley": feed["us_per_reading"] / ph,
         "route_ratio_to_pagehinkley": route["us_per_reading"] / ph,
         "findings": feed["findings"], "detectors": feed["detectors"], "river": ph1["river"],
@@ -131,6 +136,7 @@ def main(argv: list[str] | None = None) -> dict:
     print(f"live path, {r['readings']} readings, default set {', '.join(r['detectors'])}")
     print(f"  Monitor.feed        {r['feed_us']:8.2f} us/reading  ({r['feed_ratio_to_pagehinkley']:.1f}x PageHinkley, "
           f"{r['findings']} findings)")
+    print(f"  same, in control    {r['feed_in_control_us']:8.2f} us/reading  (no step; {r['in_control_findings']} findings)")
     print(f"  Route.take (parse)  {r['route_us']:8.2f} us/reading  ({r['route_ratio_to_pagehinkley']:.1f}x PageHinkley)")
     print(f"  river PageHinkley   {r['pagehinkley_us']:8.2f} us/reading  (river {r['river']})")
     print(f"  targets: < {TARGET_US:g} us and <= {TARGET_RATIO:g}x PageHinkley (CPU time)")

@@ -98,10 +98,15 @@ def cusum_markov_matrix(k: float, level: float, delta: float = 0.0, states: int 
     m = int(states)
     w = 2.0 * level / (2 * m - 1)
     mid = np.arange(m) * w
-    upper_edges = (np.arange(m) + 0.5) * w  # upper edge of each target state
-    # P(next <= edge_j | from i) = Phi(edge_j - mid_i + k - delta)
-    cdf = special.ndtr(upper_edges[None, :] - mid[:, None] + k - delta)
-    Q = np.diff(cdf, axis=1, prepend=0.0)
+    # P(next <= upper edge of j | from i) = Phi((j - i + 1/2) w + k - delta) depends on j - i
+    # only (a Toeplitz matrix): 2m - 1 normal probabilities instead of m^2.
+    cdf_by_lag = special.ndtr((np.arange(-(m - 1), m) + 0.5) * w + k - delta)  # lag j - i = -(m-1)..m-1
+    step = np.empty_like(cdf_by_lag)  # P(next in state j | from i), by lag
+    step[0] = cdf_by_lag[0]
+    np.subtract(cdf_by_lag[1:], cdf_by_lag[:-1], out=step[1:])
+    # Q[i, j] = step[m - 1 - i + j]: row i starts i places further back
+    Q = np.lib.stride_tricks.as_strided(step[m - 1 :], shape=(m, m), strides=(-step.itemsize, step.itemsize)).copy()
+    Q[:, 0] = cdf_by_lag[m - 1 :: -1]  # into state 0: everything up to its upper edge
     exit_prob = special.ndtr(-(level - mid + k - delta))
     return Q, exit_prob, w
 
@@ -353,17 +358,24 @@ class Cusum(StreamDetector):
     # -- batch --------------------------------------------------------------
     @classmethod
     def scan(cls, x: Any, **params: Any) -> list[Signal]:
-        """Signals over ``x`` from a fresh start, identical to streaming ``update``.
+        """Signals over ``x`` from a fresh start, identical to streaming ``update``."""
+        return cls(**params).resume(x)
+
+    def resume(self, x: Any) -> list[Signal]:
+        """Signals over ``x`` continuing from this detector's state, identical to ``update``
+        on each value in turn (and the state afterwards is the same).
 
         Vectorised per block with ``cumsum`` and ``minimum.accumulate`` (the Lindley
-        form); after a signal the block restarts at the next value.
+        form, which adds in the same order as ``update``, so values are bit-identical);
+        after a signal the block restarts at the next value.
         """
-        det = cls(**params)
+        det = self
         x = np.asarray(x, dtype=float).ravel()
         if not np.all(np.isfinite(x)):
             raise ValueError(f"value must be finite, got {x[~np.isfinite(x)][0]!r}")
         out: list[Signal] = []
         n = x.size
+        base = det._t  # index of x[0] in this detector's own count
         pos = 0
         block = 256
         while pos < n:
@@ -380,15 +392,15 @@ class Cusum(StreamDetector):
             zp = np.flatnonzero(cp[: stop + 1] == 0.0)
             zn = np.flatnonzero(cn[: stop + 1] == 0.0)
             if zp.size:
-                det._zp, det._fp = pos + int(zp[-1]), True
+                det._zp, det._fp = base + pos + int(zp[-1]), True
             if zn.size:
-                det._zn, det._fn = pos + int(zn[-1]), True
+                det._zn, det._fn = base + pos + int(zn[-1]), True
             det._sp, det._mp, det._sn, det._mn = float(sp[stop]), float(mp[stop]), float(sn[stop]), float(mn[stop])
-            det._t = pos + stop + 1
+            det._t = base + pos + stop + 1
             c_up, c_dn = float(cp[stop]), float(cn[stop])
             det.last = c_up if c_up >= c_dn else c_dn
             if hit.size:
-                t = pos + stop
+                t = base + pos + stop
                 up = c_up >= c_dn
                 out.append(det._signal(t, c_up if up else c_dn, det._zp if up else det._zn, det._fp if up else det._fn, up))
                 det._restart()

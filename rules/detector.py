@@ -12,7 +12,9 @@ Every detector in ``rules`` is one small class:
   daemon can checkpoint it mid-stream;
 * ``scan(x)`` (class method) evaluates a whole array from a fresh start and
   returns exactly the signals that feeding ``update`` one value at a time
-  would give, vectorised where the method allows it.
+  would give, vectorised where the method allows it; ``resume(x)`` does the
+  same from the detector's current state (so a long series can be taken in
+  chunks with nothing kept but the state).
 
 Convention on firing: after a signal a detector *restarts* (windowed tests
 clear their window, cumulative statistics return to zero).  The stream of
@@ -142,10 +144,14 @@ class StreamDetector:
     @classmethod
     def scan(cls, x: Any, **params: Any) -> list[Signal]:
         """All signals over ``x`` from a fresh start (reference loop; subclasses vectorise)."""
-        det = cls(**params)
+        return cls(**params).resume(x)
+
+    def resume(self, x: Any) -> list[Signal]:
+        """All signals over ``x`` continuing from this detector's current state, as ``update``
+        on each value in turn gives them (reference loop; subclasses may vectorise)."""
         out = []
         for v in np.asarray(x, dtype=float):
-            s = det.update(float(v))
+            s = self.update(float(v))
             if s is not None:
                 out.append(s)
         return out

@@ -338,18 +338,24 @@ class Ewma(StreamDetector):
     # -- batch --------------------------------------------------------------
     @classmethod
     def scan(cls, x: Any, **params: Any) -> list[Signal]:
-        """Signals over ``x`` from a fresh start, identical to streaming ``update``.
+        """Signals over ``x`` from a fresh start, identical to streaming ``update``."""
+        return cls(**params).resume(x)
+
+    def resume(self, x: Any) -> list[Signal]:
+        """Signals over ``x`` continuing from this detector's state, identical to ``update``
+        on each value in turn (and the state afterwards is the same).
 
         The EWMA is computed per block by ``scipy.signal.lfilter`` (same arithmetic
         as the recursion), the exact-limit factor by ``cumprod``; after a signal the
         block restarts at the next value.
         """
-        det = cls(**params)
+        det = self
         x = np.asarray(x, dtype=float).ravel()
         if not np.all(np.isfinite(x)):
             raise ValueError(f"value must be finite, got {x[~np.isfinite(x)][0]!r}")
         out: list[Signal] = []
         n = x.size
+        base = det._t  # index of x[0] in this detector's own count
         pos = 0
         block = 256
         b, a = [det.lam], [1.0, -det._q]
@@ -370,7 +376,7 @@ class Ewma(StreamDetector):
             new = np.flatnonzero((sg == 0) | (sg != prev))
             if new.size:
                 j0 = int(new[-1])
-                det._rstart = pos + j0
+                det._rstart = base + pos + j0
                 det._rsum = float(np.cumsum(seg[j0 : stop + 1])[-1])
             else:
                 det._rsum = float(np.cumsum(np.concatenate(([det._rsum], seg[: stop + 1])))[-1])
@@ -380,9 +386,9 @@ class Ewma(StreamDetector):
             if f is not None:
                 det._f = float(f[stop])
             det._i += stop + 1
-            det._t = pos + stop + 1
+            det._t = base + pos + stop + 1
             if hit.size:
-                out.append(det._signal(pos + stop))
+                out.append(det._signal(base + pos + stop))
                 det._restart()
                 block = 256
             else:

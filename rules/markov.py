@@ -47,6 +47,15 @@ def _flush(a: np.ndarray) -> np.ndarray:
     return a
 
 
+
+
+def _iterate(n: int, m: int) -> bool:
+    """Whether n plain steps (m^2 each, plus Python overhead) beat repeated squaring
+    (m^3 per product, log2 n products) for an m-state chain: measured crossover
+    about 0.8 m steps (m = 47 and 150, numpy matmul on one core)."""
+    return n <= max(16, int(0.8 * m))
+
+
 def absorbed_within_all(Q: np.ndarray, exit_prob: np.ndarray, n: int) -> np.ndarray:
     """The vector ``sum_{t=0}^{n-1} Q^t exit_prob`` (absorption within ``n`` steps from each state)."""
     m = Q.shape[0]
@@ -55,6 +64,11 @@ def absorbed_within_all(Q: np.ndarray, exit_prob: np.ndarray, n: int) -> np.ndar
         return total
     A = _flush(Q)
     B = _flush(exit_prob)
+    if _iterate(n, m):
+        for _ in range(n):  # V_{t+1} = e + Q V_t, V_0 = 0
+            total = B + A @ total
+            total[np.abs(total) < _TINY] = 0.0
+        return total
     P = None  # product of the A's used so far (applied on the left of later blocks)
     while n:
         if n & 1:
@@ -76,13 +90,14 @@ def absorbed_within(Q: np.ndarray, exit_prob: np.ndarray, start: np.ndarray, n: 
     """
     if n <= 0:
         return 0.0
-    if n <= 400:  # plain iteration (m^2 per step) is cheaper than squaring (m^3 log n) here
+    if _iterate(n, Q.shape[0]):
         v = _flush(start)
         Q = _flush(Q)
         total = 0.0
         for _ in range(n):
             total += float(v @ exit_prob)
-            v = _flush(v @ Q)
+            v = v @ Q
+            v[np.abs(v) < _TINY] = 0.0
         return total
     A = _flush(Q)  # Q^(2^j)
     B = _flush(exit_prob)  # sum_{t < 2^j} Q^t e

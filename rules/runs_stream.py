@@ -19,7 +19,12 @@ considered ends ``window`` readings later).  Conventions on ties are those of
 dropped.  A signal is statistical evidence of a non-random pattern, not proof of a
 cause.
 
-Incremental bookkeeping: the window's labels (+1 / -1 / 0) live in a ring buffer and a
+Compiled windows: where ``rules._windows`` is built (``rules/_windows.c``) and the window is at most 512
+readings, the window is its ``RunWindow``, which keeps the values and a sorted copy in C and recomputes
+the labels and their run summary on every reading (O(w) simple steps, far cheaper than the Python
+bookkeeping below).  The Python windows are the reference and the fallback; both give the same numbers.
+
+Incremental bookkeeping (the Python windows): the window's labels (+1 / -1 / 0) live in a ring buffer and a
 :class:`_RunLedger` keeps the counts, the number of runs of the zero-free label
 sequence and a histogram of run lengths per sign (with the maximum), updated locally
 when a label changes.  For the median detectors a sorted list (bisect) gives the
@@ -53,6 +58,14 @@ from rules.registry import register
 from rules.runs import sample_median
 
 _INF = float("inf")
+
+try:  # the compiled windows (rules/_windows.c); the pure-Python ones below are the reference
+    from rules._windows import MAX_W as _C_MAX_W, RunWindow as _RunWindow
+except ImportError:  # not built (no compiler at install): the Python windows do the same, slower
+    _RunWindow, _C_MAX_W = None, 0
+# Up to this window the compiled window (O(w) per reading in C) is used; beyond it the
+# incremental Python ledger (O(log w) plus local walks) is cheaper.
+_COMPILED_MAX_W = min(512, _C_MAX_W)
 # (detector key, alpha, side) -> {counts: critical values}; shared by all instances
 _FAST_CRIT: dict[tuple[str, float, str], dict[tuple[int, ...], tuple[int, ...]]] = {}
 
@@ -327,6 +340,12 @@ class _MedianWindow:
         led = self.ledger
         return [self.vals[p % self.w] for p in range(led.start, led.end)]
 
+    def push(self, x: float) -> tuple[int, int, int, int, int] | None:
+        return _pushed(self, x)
+
+    def labels(self) -> list[int]:
+        return self.ledger.labels()
+
 
 class _DiffWindow:
     """The last w values as w - 1 difference signs in a ledger."""
@@ -357,6 +376,22 @@ class _DiffWindow:
     def values(self) -> list[float]:
         return list(self.vals)
 
+    def push(self, x: float) -> tuple[int, int, int, int, int] | None:
+        return _pushed(self, x)
+
+    def labels(self) -> list[int]:
+        return self.ledger.labels()
+
+
+def _pushed(win: "_MedianWindow | _DiffWindow", x: float) -> tuple[int, int, int, int, int] | None:
+    """Add ``x``; None while the window is not full, else its summary
+    ``(n_pos, n_neg, runs, longest +1 run, longest -1 run)`` (the compiled window's ``push``)."""
+    win.add(x)
+    if not win.full():
+        return None
+    led = win.ledger
+    return led.n_pos, led.n_neg, led.runs, led.top[1], led.top[-1]
+
 
 # ----------------------------------------------------------------------------------
 # detector base for the four windowed run detectors
@@ -382,9 +417,13 @@ class _WindowRunDetector(StreamDetector):
         self._reset()
 
     def _reset(self) -> None:
-        ledger = _RunLedger if self.NEED_TOP else _RunCounter
-        kind = _MedianWindow if self.WINDOW_KIND == "median" else _DiffWindow
-        self._win = kind(self.window, ledger)
+        if _RunWindow is not None and self.window <= _COMPILED_MAX_W:
+            self._win = _RunWindow(self.window, 0 if self.WINDOW_KIND == "median" else 1)
+        else:
+            ledger = _RunLedger if self.NEED_TOP else _RunCounter
+            kind = _MedianWindow if self.WINDOW_KIND == "median" else _DiffWindow
+            self._win = kind(self.window, ledger)
+        self._push = self._win.push
 
     def update(self, x: float) -> Signal | None:
         if type(x) is not float:
@@ -395,12 +434,10 @@ class _WindowRunDetector(StreamDetector):
             raise ValueError(f"value must be finite, got {x!r}")
         index = self.n_seen
         self.n_seen = index + 1
-        win = self._win
-        win.add(x)
-        if not win.full():
+        got = self._push(x)
+        if got is None:
             return None
-        led = win.ledger
-        sig = self._evaluate(led.n_pos, led.n_neg, led.runs, led.top[1], led.top[-1], index, led.labels)
+        sig = self._evaluate(*got, index, self._win.labels)
         if sig is not None:
             self._reset()
         return sig
@@ -433,7 +470,7 @@ class _WindowRunDetector(StreamDetector):
             raise StateError(f"bad state for {self.key!r}: window holds {len(vals)} values")
         self._reset()
         for v in vals:  # the ledger is a function of the window contents only
-            self._win.add(v)
+            self._win.push(v)
         self.n_seen = n_seen
         self.last = None if last is None else float(last)
 

@@ -36,6 +36,11 @@ from scipy import special, stats
 from rules.detector import Signal, StreamDetector, check_choice, check_float, check_int
 from rules.registry import register
 
+try:  # the compiled window (rules/_windows.c); _KendallWindow below is the pure-Python reference
+    from rules._windows import MAX_W as _C_MAX_W, KendallWindow as _CKendallWindow
+except ImportError:  # not built (no compiler at install): the Python window does the same, slower
+    _CKendallWindow, _C_MAX_W = None, 0
+
 __all__ = [
     "EXACT_MAX_N",
     "MannKendallDetector",
@@ -309,6 +314,52 @@ def _tie_increment(c: int) -> int:
     return (c + 1) * c * (2 * c + 7) - c * (c - 1) * (2 * c + 5)
 
 
+class _KendallWindow:
+    """The last w values with Mann-Kendall's S and the tie term kept up to date (pure Python;
+    the reference for the compiled ``rules._windows.KendallWindow``, which does the same).
+
+    Over a sorted copy of the window: the entering value adds (#smaller - #larger) to S,
+    the leaving one removes (#larger - #smaller), each found by bisection (O(log w)
+    comparisons plus an O(w) memory move), no pair recount.
+    """
+
+    __slots__ = ("w", "buf", "sorted", "s", "ties")
+
+    def __init__(self, w: int) -> None:
+        self.w = w
+        self.buf: deque[float] = deque()
+        self.sorted: list[float] = []
+        self.s = 0
+        self.ties = 0
+
+    def push(self, v: float) -> tuple[int, int] | None:
+        """Add ``v``; None until the window is full, then ``(S, tie term)``."""
+        sl = self.sorted
+        if len(self.buf) == self.w:
+            old = self.buf.popleft()
+            lo = bisect.bisect_left(sl, old)
+            hi = bisect.bisect_right(sl, old)
+            c = hi - lo  # copies of old, itself included
+            del sl[lo]
+            # pairs (old, later j): sgn(x_j - old) = #larger - #smaller among the others
+            self.s -= (len(sl) + 1 - hi) - lo
+            self.ties -= _tie_increment(c - 1)
+        lo = bisect.bisect_left(sl, v)
+        hi = bisect.bisect_right(sl, v)
+        self.s += lo - (len(sl) - hi)
+        self.ties += _tie_increment(hi - lo)
+        sl.insert(hi, v)
+        self.buf.append(v)
+        return (self.s, self.ties) if len(self.buf) == self.w else None
+
+    def values(self) -> list[float]:
+        return list(self.buf)
+
+    def state(self) -> tuple[int, int, int]:
+        """(values held, S, tie term)."""
+        return len(self.buf), self.s, self.ties
+
+
 @register
 class MannKendallDetector(StreamDetector):
     """Rolling-window Mann-Kendall test for a drift (``pattern="drift"``).
@@ -362,10 +413,11 @@ class MannKendallDetector(StreamDetector):
         self._reset()
 
     def _reset(self) -> None:
-        self._buf: deque[float] = deque()
-        self._sorted: list[float] = []
-        self._s = 0
-        self._ties = 0
+        if _CKendallWindow is not None and self.window <= _C_MAX_W:
+            self._win = _CKendallWindow(self.window)
+        else:
+            self._win = _KendallWindow(self.window)
+        self._push = self._win.push
         self.last: int | None = None
         self._last_st: tuple[int, int] | None = None
 
@@ -380,25 +432,6 @@ class MannKendallDetector(StreamDetector):
         if self.direction == "down":
             return p_dn
         return min(1.0, 2.0 * min(p_up, p_dn))
-
-    # -- the incremental core ------------------------------------------------------------
-    def _push(self, v: float) -> None:
-        sl = self._sorted
-        if len(self._buf) == self.window:
-            old = self._buf.popleft()
-            lo = bisect.bisect_left(sl, old)
-            hi = bisect.bisect_right(sl, old)
-            c = hi - lo  # copies of old, itself included
-            del sl[lo]
-            # pairs (old, later j): sgn(x_j - old) = #larger - #smaller among the others
-            self._s -= (len(sl) + 1 - hi) - lo
-            self._ties -= _tie_increment(c - 1)
-        lo = bisect.bisect_left(sl, v)
-        hi = bisect.bisect_right(sl, v)
-        self._s += lo - (len(sl) - hi)
-        self._ties += _tie_increment(hi - lo)
-        sl.insert(hi, v)
-        self._buf.append(v)
 
     def _decide(self, s: int, ties: int) -> tuple[str | None, float, float, float]:
         p_up, p_dn, z, _ = _pvalues_from_s(s, ties, self.window)
@@ -436,12 +469,12 @@ class MannKendallDetector(StreamDetector):
             raise ValueError(f"value must be finite, got {x!r}")
         index = self._n
         self._n += 1
-        self._push(v)
-        if len(self._buf) < self.window:
+        got = self._push(v)
+        if got is None:
             self.last = None
             self._last_st = None
             return None
-        s, ties = self._s, self._ties
+        s, ties = got
         self.last = s
         self._last_st = (s, ties)
         a = s if s >= 0 else -s
@@ -455,14 +488,14 @@ class MannKendallDetector(StreamDetector):
         side, p_up, p_dn, z = self._decide(s, ties)
         if side is None:
             return None
-        sig = self._signal(index, np.fromiter(self._buf, float, self.window), s, ties, side,
+        sig = self._signal(index, np.array(self._win.values(), dtype=float), s, ties, side,
                            p_up if side == "up" else p_dn, z)
         self._reset()
         return sig
 
     # -- state -----------------------------------------------------------------------------
     def _get_state(self) -> dict[str, Any]:
-        return {"n_seen": self._n, "values": list(self._buf)}
+        return {"n_seen": self._n, "values": self._win.values()}
 
     def _set_state(self, state: dict[str, Any]) -> None:
         vals = [float(v) for v in state["values"]]
@@ -473,10 +506,9 @@ class MannKendallDetector(StreamDetector):
         self._n = check_int("n_seen", state["n_seen"], len(vals))
         self._reset()
         for v in vals:
-            self._push(v)
-        if len(self._buf) == self.window:
-            self.last = self._s
-            self._last_st = (self._s, self._ties)
+            got = self._push(v)
+        if len(vals) == self.window:
+            self.last, self._last_st = got[0], got
 
     # -- batch -----------------------------------------------------------------------------
     @classmethod
@@ -541,23 +573,39 @@ class MannKendallDetector(StreamDetector):
 
     @staticmethod
     def _window_tie_terms(a: np.ndarray, w: int) -> np.ndarray:
-        """Tie term sum t(t-1)(2t+5) of every window of length w (zeros when x has no ties)."""
-        m = a.size - w + 1
-        if np.unique(a).size == a.size:
+        """Tie term sum t(t-1)(2t+5) of every window of length w (zeros when x has no ties).
+
+        Since t(t-1)(2t+5) = 18 C(t, 2) + 12 C(t, 3), a window's term is the sum, over
+        every pair i < j of equal values inside it, of 18 + 12 (the equal values between
+        them).  Pairs are enumerated by following each value's chain of earlier equal
+        values (one vectorised pass per step back) while they lie within w - 1; each adds
+        its weight to the windows [j - w + 1, i] that hold it, through a difference array.
+        Integer arithmetic throughout: identical to the streaming update.
+        """
+        n = a.size
+        m = n - w + 1
+        order = np.argsort(a, kind="stable")
+        same = a[order[1:]] == a[order[:-1]]
+        if not same.any():
             return np.zeros(m, dtype=np.int64)
-        out = np.empty(m, dtype=np.int64)
-        counts: dict[float, int] = {}
-        tie = 0
-        vals = a.tolist()
-        for i, v in enumerate(vals):
-            c = counts.get(v, 0)
-            tie += _tie_increment(c)
-            counts[v] = c + 1
-            if i >= w:
-                o = vals[i - w]
-                c = counts[o]
-                tie -= _tie_increment(c - 1)
-                counts[o] = c - 1
-            if i >= w - 1:
-                out[i - w + 1] = tie
-        return out
+        prev = np.full(n, -1, dtype=np.int64)  # index of the previous equal value, or -1
+        prev[order[1:][same]] = order[:-1][same]
+        diff = np.zeros(m + 1, dtype=np.int64)
+        j = np.flatnonzero(prev >= 0)
+        i = prev[j]
+        back = 1  # i is the back-th equal value before j
+        while j.size:
+            near = j - i < w
+            j, i = j[near], i[near]
+            if not j.size:
+                break
+            weight = 18 + 12 * (back - 1)
+            lo = np.maximum(j - w + 1, 0)
+            hi = np.minimum(i, m - 1)  # windows lo..hi hold both
+            diff += np.bincount(lo, minlength=m + 1)[: m + 1] * weight
+            diff -= np.bincount(hi + 1, minlength=m + 1)[: m + 1] * weight
+            i = prev[i]
+            more = i >= 0
+            j, i = j[more], i[more]
+            back += 1
+        return np.cumsum(diff[:m])

@@ -34,6 +34,31 @@ def _unpack(text: str) -> list[float]:
     return a.tolist()
 
 
+PACKED = "f64"  # a detector state's list of floats, stored packed: {"f64": base64 of the doubles}
+
+
+def _pack_detector(data: dict[str, Any]) -> dict[str, Any]:
+    """A detector's exported state with its lists of floats (its window) packed.
+
+    Writing floats as JSON text (17 significant digits each) was most of the cost of saving
+    a characteristic, which the daemon does on every commit; the packed form is exact too."""
+    st = data.get("state")
+    if not isinstance(st, dict):
+        return data
+    packed = {k: {PACKED: _pack(v)} if isinstance(v, list) and v and all(type(x) is float for x in v) else v
+              for k, v in st.items()}
+    return {**data, "state": packed}
+
+
+def _unpack_detector(data: dict[str, Any]) -> dict[str, Any]:
+    """The inverse of :func:`_pack_detector` (plain lists, as older states hold, pass through)."""
+    st = data.get("state")
+    if not isinstance(st, dict):
+        return data
+    plain = {k: _unpack(v[PACKED]) if isinstance(v, dict) and set(v) == {PACKED} else v for k, v in st.items()}
+    return {**data, "state": plain}
+
+
 class Monitor:
     """Baseline, detectors and recent history of one characteristic.
 
@@ -333,7 +358,7 @@ class Monitor:
             "raw_sigma": self.raw_sigma,
             "baseline_values": _pack(self.baseline_values),
             "group": self.group,
-            "detectors": {k: d.export_state() for k, d in self.detectors.items()},
+            "detectors": {k: _pack_detector(d.export_state()) for k, d in self.detectors.items()},
             "recent_values": _pack(list(self.recent_values)),
             "recent_times": list(self.recent_times),
             "last_time": self.last_time,
@@ -366,7 +391,7 @@ class Monitor:
             m._calibrate()  # the same thresholds as before, unless the config (or its budget) changed
             saved = state["detectors"]
             if set(saved) == set(m.spec) and all(saved[k]["params"] == m._expected_params(k) for k in saved):
-                m.detectors = {k: DETECTORS[k].from_state(v) for k, v in saved.items()}
+                m.detectors = {k: DETECTORS[k].from_state(_unpack_detector(v)) for k, v in saved.items()}
             else:
                 # The configuration changed: keep the baseline, start the detectors afresh.
                 m._set_baseline(m.baseline)

@@ -41,15 +41,15 @@ allow more:
 * memoryless detectors (``MEMORYLESS``): nothing is kept.
 
 For those, signals found from a later start carry positions relative to that start; they
-are moved back (``onset_index`` and the ``window_start`` detail).  Detectors outside
-both lists (CUSUM, EWMA, the zone rules, any new one) keep everything since their last
-signal: with thresholds calibrated to a budget of one false finding per tens of thousands
-of readings, an in-control characteristic's region grows to most of the series (memory as
-a whole-series scan, about 40 bytes per reading; the reason replay memory is not yet flat)
-and it is re-scanned only when the new data is at least as long as the region already
-scanned (amortised cost at most twice one scan).  Scans that start from a carried state
-would remove this; they are not written yet (the p-values depend on the time since the
-restart, so the state is more than the statistics).  Findings themselves need not be
+are moved back (``onset_index`` and the ``window_start`` detail).  Detectors with a
+vectorised ``resume`` (CUSUM and EWMA) are *carried*: one detector object per
+characteristic takes each chunk from the state the previous one left (its statistics, the
+last zero or stretch start, and the readings since its restart, on which the p-values
+depend), so nothing is kept or re-scanned, and the result is bit-identical to ``update``
+per reading.  Detectors in none of these groups (the zone rules, Pettitt, any new one)
+keep everything since their last signal and are re-scanned from there once the new data
+is at least as long as the region already scanned (amortised cost at most twice one
+scan); they are not in the default set.  Findings themselves need not be
 kept: with ``on_finding`` each is handed over once no later reading can precede it.  The look-back for onset times and sizes is bounded by
 ``Monitor.keep`` exactly as the live deques are.
 
@@ -70,6 +70,7 @@ import numpy as np
 from watcher.config import Config, SourceConfig
 from watcher.monitor import Monitor
 from watcher.parse import Column, LineParser, parse_time, to_float
+from rules.detector import StreamDetector
 from watcher.records import Finding, Quarantined
 from watcher.route import Batch
 
@@ -116,15 +117,28 @@ class _History:
 class _Track:
     """One detector's scan bookkeeping: ``start`` is the reading a fresh scan begins at."""
 
-    __slots__ = ("key", "cls", "params", "rank", "needs_reference", "start", "scanned_to", "kind", "window")
+    __slots__ = ("key", "cls", "params", "rank", "needs_reference", "start", "scanned_to", "kind", "window", "det")
 
     def __init__(self, key: str, det: Any, rank: int, start: int):
         self.key, self.cls, self.params, self.rank = key, type(det), det.params(), rank
         self.needs_reference = det.needs_reference
         self.start = start
         self.scanned_to = start
-        self.kind = "windowed" if key in WINDOWED else "memoryless" if key in MEMORYLESS else "full"
+        if key in WINDOWED:
+            self.kind = "windowed"
+        elif key in MEMORYLESS:
+            self.kind = "memoryless"
+        elif _resumes(type(det)):
+            self.kind = "carried"
+        else:
+            self.kind = "full"
         self.window = int(self.params.get("window", 0))
+        self.det = det if self.kind == "carried" else None
+
+
+def _resumes(cls: type) -> bool:
+    """Whether the class has its own vectorised ``resume`` (not the base class's loop)."""
+    return getattr(cls, "resume", None) is not getattr(StreamDetector, "resume", None)
 
 
 class SeriesScan:
@@ -258,6 +272,9 @@ class SeriesScan:
     def _scan(self, tr: _Track, end: int, final: bool) -> None:
         if tr.start >= end:
             return
+        if tr.kind == "carried":
+            self._resume(tr, end)
+            return
         if not final and tr.kind == "full" and end - tr.scanned_to < tr.scanned_to - tr.start:
             return  # a long quiet stretch: wait until the new data is as long as the old
         m, h = self.m, self.hist
@@ -280,6 +297,18 @@ class SeriesScan:
         elif tr.kind == "memoryless":
             tr.start = end
         tr.scanned_to = end
+
+    def _resume(self, tr: _Track, end: int) -> None:
+        """A carried detector takes the new readings from where it stopped: nothing is re-scanned."""
+        m, h = self.m, self.hist
+        ws = self.watch_start
+        feed = self.fed[tr.needs_reference][tr.start - self.fbase : end - self.fbase]
+        for sig in tr.det.resume(feed):
+            i = ws + sig.index  # the detector was created at the first watched reading
+            h.now = i
+            f = m._finding(tr.key, sig, i, float(h.values[i - h.base]), h.times[i - h.base], h)
+            self._keep(i, tr.rank, f, int(self.lines[i - h.base]))
+        tr.start = tr.scanned_to = end
 
     def _trim(self, end: int) -> None:
         """Drop what no later finding can look back on."""

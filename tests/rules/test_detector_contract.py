@@ -100,3 +100,16 @@ def test_scan_equals_stream(key, kind):
 def test_scan_equals_stream_property(key, seed, kind, n):
     x = stream(np.random.default_rng(seed), n, kind)
     assert DETECTORS[key].scan(x) == feed(DETECTORS[key](), x)
+
+
+@settings(max_examples=25, deadline=None)
+@given(st.sampled_from(KEYS), st.integers(0, 2**32 - 1), st.sampled_from(["plain", "shift", "drift", "ties", "alternating"]),
+       st.lists(st.integers(0, 300), min_size=1, max_size=6))
+def test_resume_in_chunks_equals_stream(key, seed, kind, cuts):
+    """``resume`` over consecutive pieces gives the signals (and the end state) of the streaming loop."""
+    x = stream(np.random.default_rng(seed), 900, kind)
+    bounds = np.cumsum([0] + cuts).clip(0, x.size).tolist() + [x.size]
+    det, ref = DETECTORS[key](), DETECTORS[key]()
+    got = [s for a, b in zip(bounds, bounds[1:]) for s in det.resume(x[a:b])]
+    assert got == feed(ref, x)
+    assert det.export_state() == ref.export_state()

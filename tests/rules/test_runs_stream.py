@@ -71,6 +71,49 @@ def test_ledger_matches_recount_with_ties(ledger):
                         assert led.top[s] == max([k for q, k, _ in runs if q == s], default=0)
 
 
+# -- the compiled windows against the pure-Python reference -----------------------------
+
+try:
+    from rules import _windows as compiled
+except ImportError:  # pragma: no cover - an install without a C compiler
+    compiled = None
+needs_compiled = pytest.mark.skipif(compiled is None, reason="compiled windows not built (no C compiler at install)")
+
+
+@needs_compiled
+@settings(max_examples=80, deadline=None)
+@given(data=st.lists(st.integers(-3, 3), min_size=0, max_size=200), scale=st.sampled_from([1.0, 0.5, -0.0]),
+       w=st.integers(2, 40), kind=st.sampled_from([0, 1]), zeros=st.booleans())
+def test_compiled_window_equals_python_window(data, scale, w, kind, zeros):
+    """Same summary on every reading, same labels and values, with many ties (and signed zeros)."""
+    x = np.cumsum(np.array(data, dtype=float)) * scale
+    if zeros:
+        x[::3] = -0.0
+    c = compiled.RunWindow(w, kind)
+    py = (_MedianWindow if kind == 0 else _DiffWindow)(w, _RunLedger)
+    for v in x.tolist():
+        assert c.push(v) == py.push(v)
+        assert c.full() == py.full() and c.values() == py.values()
+        if py.full():
+            assert c.labels() == py.labels()
+
+
+@needs_compiled
+@pytest.mark.parametrize("cls", ALL)
+def test_detectors_give_the_same_signals_on_python_windows(cls, monkeypatch):
+    """The fallback (no compiler, or windows above the compiled limit) finds exactly what the compiled path finds."""
+    import rules.runs_stream as rs
+
+    rng = np.random.default_rng(4)
+    x = np.round(rng.normal(size=4000) + np.r_[np.zeros(2000), np.linspace(0, 3, 2000)], 1)
+    fast = stream(cls(window=30, alpha=0.01), x)
+    assert isinstance(cls(window=30)._win, compiled.RunWindow)
+    monkeypatch.setattr(rs, "_RunWindow", None)
+    slow = cls(window=30, alpha=0.01)
+    assert not isinstance(slow._win, compiled.RunWindow)
+    assert fast and stream(slow, x) == fast
+
+
 # -- each detector agrees with the array test on the window that fired -------------------
 
 

@@ -322,7 +322,7 @@ def test_state_round_trip():
     got = [s for s in (part.update(v) for v in x[:333]) if s is not None]
     data = json.loads(json.dumps(part.export_state()))
     again = MannKendallDetector.from_state(data)
-    assert again.last == part.last and again._s == part._s and again._ties == part._ties
+    assert again.last == part.last and again._win.state() == part._win.state()
     got += [s for s in (again.update(v) for v in x[333:]) if s is not None]
     assert got == ref
     data["detector"] = "cusum"
@@ -342,3 +342,43 @@ def test_registered_and_validated():
         MannKendallDetector(direction="sideways")
     with pytest.raises(ValueError, match="finite"):
         d.update(float("nan"))
+
+
+# -- the compiled window against the pure-Python reference ---------------------------------
+
+try:
+    from rules import _windows as compiled
+except ImportError:  # pragma: no cover - an install without a C compiler
+    compiled = None
+needs_compiled = pytest.mark.skipif(compiled is None, reason="compiled windows not built (no C compiler at install)")
+
+
+@needs_compiled
+@settings(max_examples=80, deadline=None)
+@given(data=st.lists(st.integers(-3, 3), min_size=0, max_size=200), w=st.integers(4, 40), zeros=st.booleans())
+def test_compiled_kendall_window_equals_python_window(data, w, zeros):
+    """Same S and tie term on every reading, with many ties and signed zeros."""
+    from rules.trend import _KendallWindow
+
+    x = np.cumsum(np.array(data, dtype=float)) * 0.5
+    if zeros:
+        x[::3] = -0.0
+    c, py = compiled.KendallWindow(w), _KendallWindow(w)
+    for v in x.tolist():
+        assert c.push(v) == py.push(v)
+        assert c.values() == py.values() and c.state() == py.state()
+
+
+@needs_compiled
+def test_detector_gives_the_same_signals_on_the_python_window(monkeypatch):
+    import rules.trend as tr
+
+    rng = np.random.default_rng(8)
+    x = np.round(rng.normal(size=5000) + np.r_[np.zeros(2500), np.linspace(0, 2, 2500)], 1)
+    det = tr.MannKendallDetector(window=30, alpha=0.01)
+    assert isinstance(det._win, compiled.KendallWindow)
+    fast = [s for v in x.tolist() if (s := det.update(v)) is not None]
+    monkeypatch.setattr(tr, "_CKendallWindow", None)
+    slow_det = tr.MannKendallDetector(window=30, alpha=0.01)
+    assert isinstance(slow_det._win, tr._KendallWindow)
+    assert fast and [s for v in x.tolist() if (s := slow_det.update(v)) is not None] == fast

@@ -94,6 +94,28 @@ def test_state_round_trip_gives_identical_findings(k):
     assert [f.to_dict() for f in a] == [f.to_dict() for f in b]
 
 
+def test_saved_state_packs_the_detector_windows_and_reads_plain_ones():
+    """The windows are stored as packed doubles (exact, and much cheaper to write than JSON
+    numbers); a state written with plain lists (before packing) still loads to the same detectors."""
+    from watcher.monitor import PACKED
+
+    rng = np.random.default_rng(6)
+    cc = char()
+    m = Monitor(cc, "cw")
+    for v in (500 + rng.normal(size=400)).tolist():
+        m.feed(v)
+    state = json.loads(json.dumps(m.export_state()))
+    runs = state["detectors"]["median_runs"]["state"]
+    assert set(runs["window_values"]) == {PACKED}
+    plain = json.loads(json.dumps(state))
+    for k, d in m.detectors.items():
+        plain["detectors"][k] = d.export_state()
+    again = Monitor.from_state(cc, "cw", plain)
+    packed = Monitor.from_state(cc, "cw", state)
+    assert {k: d.export_state() for k, d in again.detectors.items()} == {k: d.export_state() for k, d in m.detectors.items()}
+    assert {k: d.export_state() for k, d in packed.detectors.items()} == {k: d.export_state() for k, d in m.detectors.items()}
+
+
 @settings(max_examples=20, deadline=None)
 @given(st.integers(0, 2**32 - 1), st.sampled_from([1, 3]), st.sampled_from([0.0, 1.0, 2.0]),
        st.sampled_from([0.0, 0.002, 0.01]), st.sampled_from([None, 1]))

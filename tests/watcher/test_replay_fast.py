@@ -220,6 +220,26 @@ def test_chunked_scan_equals_scan_all(chunk):
     assert [f.to_dict() for f in got] == [f.to_dict() for f in whole]
 
 
+def test_history_kept_stays_bounded_on_a_long_quiet_series():
+    """Flat memory: on an in-control series no detector holds on to the readings since its start.
+
+    CUSUM and EWMA are carried from chunk to chunk, the windowed tests keep a window, so what
+    is kept is bounded by the findings' look-back (``Monitor.keep``) plus one chunk."""
+    rng = np.random.default_rng(5)
+    n, chunk = 60_000, 2_000
+    x = 10 + rng.normal(0, 1, n)
+    cc = CharacteristicConfig(name="c", source="s", column="c", window=25, baseline=BaselineConfig(readings=100))
+    m = Monitor(cc, "s", calibrator=AsConfigured())
+    sc = SeriesScan(m, chunk=chunk)
+    times = np.full(n, None, dtype=object)
+    kept = []
+    for a in range(0, n, chunk):
+        sc.add(x[a:a + chunk], times[a:a + chunk], np.arange(a, a + chunk))
+        kept.append(max(len(sc.hist.values), *(len(v) for v in sc.fed.values())))
+    assert {tr.kind for tr in sc.tracks} >= {"carried", "windowed", "memoryless"}
+    assert max(kept) <= m.keep + chunk < n // 4
+
+
 def test_unusable_paths(tmp_path):
     from watcher.replay import UnusableInput
 

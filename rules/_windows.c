@@ -1,0 +1,355 @@
+/* The rolling windows of the windowed detectors, compiled: RunWindow for the run
+ * detectors (rules/runs_stream.py), KendallWindow for Mann-Kendall (rules/trend.py).
+ *
+ * RunWindow(w, kind): kind 0 keeps the last w values and labels each +1 / -1 / 0 against
+ * the window median (above / below / equal); kind 1 keeps the last w values and labels
+ * their w - 1 successive differences by sign.  push(x) adds a value and returns None
+ * until the window is full, then the summary of the zero-free label sequence:
+ * (n_pos, n_neg, runs, longest run of +1, longest run of -1).
+ *
+ * Same numbers as the pure-Python _MedianWindow / _DiffWindow with their ledgers (the
+ * reference implementation, which tests/rules/test_runs_stream.py compares this with):
+ * the median of the sorted window is the middle value, or the mean of the two middle
+ * values; labels compare each value with it.  The summary is recomputed from the labels
+ * on every push: O(w) simple steps, cheaper in C for the windows used here (the Python
+ * side uses this type only for w <= MAX_W) than the incremental ledger is in Python.
+ */
+#define PY_SSIZE_T_CLEAN
+#include <Python.h>
+#include <string.h>
+
+#define MAX_W 4096
+
+typedef struct {
+    PyObject_HEAD
+    Py_ssize_t w;      /* window length */
+    int kind;          /* 0 median, 1 differences */
+    Py_ssize_t count;  /* values held (<= w) */
+    Py_ssize_t head;   /* ring position of the oldest value */
+    double *ring;      /* values in arrival order, ring of w */
+    double *sorted;    /* kind 0: the held values, ascending */
+    signed char *lab;  /* scratch: labels in window order */
+} RunWindow;
+
+static void RunWindow_dealloc(RunWindow *self) {
+    PyMem_Free(self->ring);
+    PyMem_Free(self->sorted);
+    PyMem_Free(self->lab);
+    Py_TYPE(self)->tp_free((PyObject *)self);
+}
+
+static int RunWindow_init(RunWindow *self, PyObject *args, PyObject *kwds) {
+    static char *kwlist[] = {"w", "kind", NULL};
+    Py_ssize_t w;
+    int kind;
+    if (!PyArg_ParseTupleAndKeywords(args, kwds, "ni", kwlist, &w, &kind))
+        return -1;
+    if (w < 2 || w > MAX_W || (kind != 0 && kind != 1)) {
+        PyErr_Format(PyExc_ValueError, "RunWindow needs 2 <= w <= %d and kind 0 or 1", MAX_W);
+        return -1;
+    }
+    self->w = w;
+    self->kind = kind;
+    self->count = 0;
+    self->head = 0;
+    PyMem_Free(self->ring);
+    PyMem_Free(self->sorted);
+    PyMem_Free(self->lab);
+    self->ring = PyMem_Calloc((size_t)w, sizeof(double));
+    self->sorted = PyMem_Calloc((size_t)w, sizeof(double));
+    self->lab = PyMem_Calloc((size_t)w, 1);
+    if (!self->ring || !self->sorted || !self->lab) {
+        PyErr_NoMemory();
+        return -1;
+    }
+    return 0;
+}
+
+/* first index in sorted[0:n) whose value is >= x */
+static Py_ssize_t lower_bound(const double *a, Py_ssize_t n, double x) {
+    Py_ssize_t lo = 0, hi = n;
+    while (lo < hi) {
+        Py_ssize_t mid = (lo + hi) / 2;
+        if (a[mid] < x)
+            lo = mid + 1;
+        else
+            hi = mid;
+    }
+    return lo;
+}
+
+/* labels of the held window, oldest first; returns how many */
+static Py_ssize_t fill_labels(RunWindow *self) {
+    Py_ssize_t n = self->count, w = self->w, i;
+    signed char *lab = self->lab;
+    if (self->kind == 0) {
+        Py_ssize_t h = n >> 1;
+        double m = (n & 1) ? self->sorted[h] : (self->sorted[h - 1] + self->sorted[h]) / 2;
+        for (i = 0; i < n; i++) {
+            double v = self->ring[(self->head + i) % w];
+            lab[i] = (signed char)((v > m) - (v < m));
+        }
+        return n;
+    }
+    for (i = 1; i < n; i++) {
+        double a = self->ring[(self->head + i - 1) % w], b = self->ring[(self->head + i) % w];
+        lab[i - 1] = (signed char)((b > a) - (b < a));
+    }
+    return n > 0 ? n - 1 : 0;
+}
+
+static void add_value(RunWindow *self, double x) {
+    Py_ssize_t w = self->w;
+    if (self->count == w) { /* drop the oldest */
+        double old = self->ring[self->head];
+        if (self->kind == 0) {
+            Py_ssize_t k = lower_bound(self->sorted, w, old);
+            memmove(self->sorted + k, self->sorted + k + 1, (size_t)(w - 1 - k) * sizeof(double));
+        }
+        self->head = (self->head + 1) % w;
+        self->count--;
+    }
+    self->ring[(self->head + self->count) % w] = x;
+    if (self->kind == 0) {
+        Py_ssize_t n = self->count, k = lower_bound(self->sorted, n, x);
+        memmove(self->sorted + k + 1, self->sorted + k, (size_t)(n - k) * sizeof(double));
+        self->sorted[k] = x;
+    }
+    self->count++;
+}
+
+static PyObject *RunWindow_push(RunWindow *self, PyObject *arg) {
+    double x = PyFloat_AsDouble(arg);
+    if (x == -1.0 && PyErr_Occurred())
+        return NULL;
+    add_value(self, x);
+    if (self->count < self->w)
+        Py_RETURN_NONE;
+    Py_ssize_t n = fill_labels(self), i;
+    long n_pos = 0, n_neg = 0, runs = 0, top_pos = 0, top_neg = 0, cur = 0;
+    int prev = 0;
+    for (i = 0; i < n; i++) {
+        int v = self->lab[i];
+        if (!v)
+            continue;
+        if (v > 0)
+            n_pos++;
+        else
+            n_neg++;
+        if (v == prev) {
+            cur++;
+        } else {
+            runs++;
+            cur = 1;
+            prev = v;
+        }
+        if (v > 0 && cur > top_pos)
+            top_pos = cur;
+        if (v < 0 && cur > top_neg)
+            top_neg = cur;
+    }
+    return Py_BuildValue("(lllll)", n_pos, n_neg, runs, top_pos, top_neg);
+}
+
+static PyObject *RunWindow_labels(RunWindow *self, PyObject *Py_UNUSED(ignored)) {
+    Py_ssize_t n = fill_labels(self), i;
+    PyObject *out = PyList_New(n);
+    if (!out)
+        return NULL;
+    for (i = 0; i < n; i++)
+        PyList_SET_ITEM(out, i, PyLong_FromLong(self->lab[i]));
+    return out;
+}
+
+static PyObject *RunWindow_values(RunWindow *self, PyObject *Py_UNUSED(ignored)) {
+    PyObject *out = PyList_New(self->count);
+    Py_ssize_t i;
+    if (!out)
+        return NULL;
+    for (i = 0; i < self->count; i++) {
+        PyObject *v = PyFloat_FromDouble(self->ring[(self->head + i) % self->w]);
+        if (!v) {
+            Py_DECREF(out);
+            return NULL;
+        }
+        PyList_SET_ITEM(out, i, v);
+    }
+    return out;
+}
+
+static PyObject *RunWindow_full(RunWindow *self, PyObject *Py_UNUSED(ignored)) {
+    return PyBool_FromLong(self->count == self->w);
+}
+
+static PyMethodDef RunWindow_methods[] = {
+    {"push", (PyCFunction)RunWindow_push, METH_O, "Add a value; None until full, then (n_pos, n_neg, runs, top_pos, top_neg)."},
+    {"labels", (PyCFunction)RunWindow_labels, METH_NOARGS, "The window's labels, oldest first."},
+    {"values", (PyCFunction)RunWindow_values, METH_NOARGS, "The window's values, oldest first."},
+    {"full", (PyCFunction)RunWindow_full, METH_NOARGS, "Whether the window holds w values."},
+    {NULL, NULL, 0, NULL}};
+
+static PyTypeObject RunWindowType = {
+    PyVarObject_HEAD_INIT(NULL, 0).tp_name = "rules._windows.RunWindow",
+    .tp_basicsize = sizeof(RunWindow),
+    .tp_dealloc = (destructor)RunWindow_dealloc,
+    .tp_flags = Py_TPFLAGS_DEFAULT,
+    .tp_doc = "Rolling window of the run detectors: median labels (kind 0) or difference signs (kind 1).",
+    .tp_methods = RunWindow_methods,
+    .tp_init = (initproc)RunWindow_init,
+    .tp_new = PyType_GenericNew,
+};
+
+/* ---------------------------------------------------------------- KendallWindow
+ * KendallWindow(w): the last w values, Mann-Kendall's S over them and the tie term
+ * sum t(t-1)(2t+5) of their tied groups, kept up to date as in MannKendallDetector's
+ * pure-Python window (the reference): a value entering adds (#smaller - #larger) to S,
+ * the oldest leaving removes (#larger - #smaller); both found by binary search in a
+ * sorted copy.  push(x) returns None until the window is full, then (S, tie term).
+ */
+
+typedef struct {
+    PyObject_HEAD
+    Py_ssize_t w, count, head;
+    long long s, ties;
+    double *ring, *sorted;
+} KendallWindow;
+
+static long long tie_increment(long long c) { /* f(c+1) - f(c), f(t) = t(t-1)(2t+5) */
+    return (c + 1) * c * (2 * c + 7) - c * (c - 1) * (2 * c + 5);
+}
+
+/* first index in a[0:n) whose value is > x */
+static Py_ssize_t upper_bound(const double *a, Py_ssize_t n, double x) {
+    Py_ssize_t lo = 0, hi = n;
+    while (lo < hi) {
+        Py_ssize_t mid = (lo + hi) / 2;
+        if (a[mid] <= x)
+            lo = mid + 1;
+        else
+            hi = mid;
+    }
+    return lo;
+}
+
+static void KendallWindow_dealloc(KendallWindow *self) {
+    PyMem_Free(self->ring);
+    PyMem_Free(self->sorted);
+    Py_TYPE(self)->tp_free((PyObject *)self);
+}
+
+static int KendallWindow_init(KendallWindow *self, PyObject *args, PyObject *kwds) {
+    static char *kwlist[] = {"w", NULL};
+    Py_ssize_t w;
+    if (!PyArg_ParseTupleAndKeywords(args, kwds, "n", kwlist, &w))
+        return -1;
+    if (w < 2 || w > MAX_W) {
+        PyErr_Format(PyExc_ValueError, "KendallWindow needs 2 <= w <= %d", MAX_W);
+        return -1;
+    }
+    self->w = w;
+    self->count = self->head = 0;
+    self->s = self->ties = 0;
+    PyMem_Free(self->ring);
+    PyMem_Free(self->sorted);
+    self->ring = PyMem_Calloc((size_t)w, sizeof(double));
+    self->sorted = PyMem_Calloc((size_t)w, sizeof(double));
+    if (!self->ring || !self->sorted) {
+        PyErr_NoMemory();
+        return -1;
+    }
+    return 0;
+}
+
+static PyObject *KendallWindow_push(KendallWindow *self, PyObject *arg) {
+    double v = PyFloat_AsDouble(arg);
+    if (v == -1.0 && PyErr_Occurred())
+        return NULL;
+    Py_ssize_t w = self->w, n = self->count, lo, hi;
+    double *sl = self->sorted;
+    if (n == w) {
+        double old = self->ring[self->head];
+        lo = lower_bound(sl, n, old);
+        hi = upper_bound(sl, n, old);
+        memmove(sl + lo, sl + lo + 1, (size_t)(n - 1 - lo) * sizeof(double));
+        self->s -= (long long)(n - hi) - (long long)lo;
+        self->ties -= tie_increment((long long)(hi - lo - 1));
+        self->head = (self->head + 1) % w;
+        n--;
+    }
+    lo = lower_bound(sl, n, v);
+    hi = upper_bound(sl, n, v);
+    self->s += (long long)lo - (long long)(n - hi);
+    self->ties += tie_increment((long long)(hi - lo));
+    memmove(sl + hi + 1, sl + hi, (size_t)(n - hi) * sizeof(double));
+    sl[hi] = v;
+    self->ring[(self->head + n) % w] = v;
+    self->count = n + 1;
+    if (self->count < w)
+        Py_RETURN_NONE;
+    return Py_BuildValue("(LL)", self->s, self->ties);
+}
+
+static PyObject *KendallWindow_values(KendallWindow *self, PyObject *Py_UNUSED(ignored)) {
+    PyObject *out = PyList_New(self->count);
+    Py_ssize_t i;
+    if (!out)
+        return NULL;
+    for (i = 0; i < self->count; i++) {
+        PyObject *x = PyFloat_FromDouble(self->ring[(self->head + i) % self->w]);
+        if (!x) {
+            Py_DECREF(out);
+            return NULL;
+        }
+        PyList_SET_ITEM(out, i, x);
+    }
+    return out;
+}
+
+static PyObject *KendallWindow_state(KendallWindow *self, PyObject *Py_UNUSED(ignored)) {
+    return Py_BuildValue("(nLL)", self->count, self->s, self->ties);
+}
+
+static PyMethodDef KendallWindow_methods[] = {
+    {"push", (PyCFunction)KendallWindow_push, METH_O, "Add a value; None until full, then (S, tie term)."},
+    {"values", (PyCFunction)KendallWindow_values, METH_NOARGS, "The window's values, oldest first."},
+    {"state", (PyCFunction)KendallWindow_state, METH_NOARGS, "(values held, S, tie term)."},
+    {NULL, NULL, 0, NULL}};
+
+static PyTypeObject KendallWindowType = {
+    PyVarObject_HEAD_INIT(NULL, 0).tp_name = "rules._windows.KendallWindow",
+    .tp_basicsize = sizeof(KendallWindow),
+    .tp_dealloc = (destructor)KendallWindow_dealloc,
+    .tp_flags = Py_TPFLAGS_DEFAULT,
+    .tp_doc = "Rolling window of the Mann-Kendall detector: S and the tie term.",
+    .tp_methods = KendallWindow_methods,
+    .tp_init = (initproc)KendallWindow_init,
+    .tp_new = PyType_GenericNew,
+};
+
+static struct PyModuleDef moduledef = {PyModuleDef_HEAD_INIT, "_windows",
+                                       "Compiled rolling windows of the windowed detectors.", -1, NULL};
+
+PyMODINIT_FUNC PyInit__windows(void) {
+    if (PyType_Ready(&RunWindowType) < 0 || PyType_Ready(&KendallWindowType) < 0)
+        return NULL;
+    PyObject *m = PyModule_Create(&moduledef);
+    if (!m)
+        return NULL;
+    Py_INCREF(&RunWindowType);
+    if (PyModule_AddObject(m, "RunWindow", (PyObject *)&RunWindowType) < 0) {
+        Py_DECREF(&RunWindowType);
+        Py_DECREF(m);
+        return NULL;
+    }
+    Py_INCREF(&KendallWindowType);
+    if (PyModule_AddObject(m, "KendallWindow", (PyObject *)&KendallWindowType) < 0) {
+        Py_DECREF(&KendallWindowType);
+        Py_DECREF(m);
+        return NULL;
+    }
+    if (PyModule_AddIntConstant(m, "MAX_W", MAX_W) < 0) {
+        Py_DECREF(m);
+        return NULL;
+    }
+    return m;
+}
