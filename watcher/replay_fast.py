@@ -74,7 +74,7 @@ from rules.detector import StreamDetector
 from watcher.records import Finding, Quarantined
 from watcher.route import Batch
 
-CHUNK = 1 << 16  # readings of one characteristic handed to the detectors at once
+CHUNK = 1 << 14  # readings of one characteristic handed to the detectors at once
 BLOCK_BYTES = 2 << 20  # bytes of the file parsed at once (whole lines)
 MAX_VALUE_WIDTH = 48  # longer value fields go to LineParser (fixed-width gather stays small)
 MAX_TIME_WIDTH = 64
