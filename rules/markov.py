@@ -47,8 +47,6 @@ def _flush(a: np.ndarray) -> np.ndarray:
     return a
 
 
-
-
 def _iterate(n: int, m: int) -> bool:
     """Whether n plain steps (m^2 each, plus Python overhead) beat repeated squaring
     (m^3 per product, log2 n products) for an m-state chain: measured crossover

@@ -299,7 +299,25 @@ def _latest_longest(labels, sides: tuple[int, ...]) -> tuple[int, int, int]:
 # ----------------------------------------------------------------------------------
 
 
-class _MedianWindow:
+class _Summarised:
+    """What both Python windows give the detectors, as the compiled ``RunWindow`` does."""
+
+    __slots__ = ()
+
+    def push(self, x: float) -> tuple[int, int, int, int, int] | None:
+        """Add ``x``; None while the window is not full, else its summary
+        ``(n_pos, n_neg, runs, longest +1 run, longest -1 run)``."""
+        self.add(x)
+        if not self.full():
+            return None
+        led = self.ledger
+        return led.n_pos, led.n_neg, led.runs, led.top[1], led.top[-1]
+
+    def labels(self) -> list[int]:
+        return self.ledger.labels()
+
+
+class _MedianWindow(_Summarised):
     """The last w values, their rolling median and above/below labels in a ledger."""
 
     __slots__ = ("w", "vals", "sorted", "median", "ledger")
@@ -340,14 +358,8 @@ class _MedianWindow:
         led = self.ledger
         return [self.vals[p % self.w] for p in range(led.start, led.end)]
 
-    def push(self, x: float) -> tuple[int, int, int, int, int] | None:
-        return _pushed(self, x)
 
-    def labels(self) -> list[int]:
-        return self.ledger.labels()
-
-
-class _DiffWindow:
+class _DiffWindow(_Summarised):
     """The last w values as w - 1 difference signs in a ledger."""
 
     __slots__ = ("w", "vals", "ledger")
@@ -375,22 +387,6 @@ class _DiffWindow:
 
     def values(self) -> list[float]:
         return list(self.vals)
-
-    def push(self, x: float) -> tuple[int, int, int, int, int] | None:
-        return _pushed(self, x)
-
-    def labels(self) -> list[int]:
-        return self.ledger.labels()
-
-
-def _pushed(win: "_MedianWindow | _DiffWindow", x: float) -> tuple[int, int, int, int, int] | None:
-    """Add ``x``; None while the window is not full, else its summary
-    ``(n_pos, n_neg, runs, longest +1 run, longest -1 run)`` (the compiled window's ``push``)."""
-    win.add(x)
-    if not win.full():
-        return None
-    led = win.ledger
-    return led.n_pos, led.n_neg, led.runs, led.top[1], led.top[-1]
 
 
 # ----------------------------------------------------------------------------------

@@ -67,10 +67,10 @@ from typing import Any, Callable, TextIO
 
 import numpy as np
 
+from rules.detector import StreamDetector
 from watcher.config import Config, SourceConfig
 from watcher.monitor import Monitor
 from watcher.parse import Column, LineParser, parse_time, to_float
-from rules.detector import StreamDetector
 from watcher.records import Finding, Quarantined
 from watcher.route import Batch
 
@@ -277,7 +277,6 @@ class SeriesScan:
             return
         if not final and tr.kind == "full" and end - tr.scanned_to < tr.scanned_to - tr.start:
             return  # a long quiet stretch: wait until the new data is as long as the old
-        m, h = self.m, self.hist
         ws = self.watch_start
         feed = self.fed[tr.needs_reference][tr.start - self.fbase : end - self.fbase]
         shift = tr.start - ws  # position of the scan's first value in the detector's own index
@@ -286,9 +285,7 @@ class SeriesScan:
             i = tr.start + sig.index
             if shift:
                 sig = _moved(sig, shift)
-            h.now = i
-            f = m._finding(tr.key, sig, i, float(h.values[i - h.base]), h.times[i - h.base], h)
-            self._keep(i, tr.rank, f, int(self.lines[i - h.base]))
+            self._take(tr, sig, i)
             last = i
         if last is not None:
             tr.start = last + 1
@@ -300,15 +297,17 @@ class SeriesScan:
 
     def _resume(self, tr: _Track, end: int) -> None:
         """A carried detector takes the new readings from where it stopped: nothing is re-scanned."""
-        m, h = self.m, self.hist
-        ws = self.watch_start
         feed = self.fed[tr.needs_reference][tr.start - self.fbase : end - self.fbase]
         for sig in tr.det.resume(feed):
-            i = ws + sig.index  # the detector was created at the first watched reading
-            h.now = i
-            f = m._finding(tr.key, sig, i, float(h.values[i - h.base]), h.times[i - h.base], h)
-            self._keep(i, tr.rank, f, int(self.lines[i - h.base]))
+            self._take(tr, sig, self.watch_start + sig.index)  # created at the first watched reading
         tr.start = tr.scanned_to = end
+
+    def _take(self, tr: _Track, sig: Any, i: int) -> None:
+        """The finding of ``tr``'s signal on reading ``i``, with the live monitor's look-back."""
+        h = self.hist
+        h.now = i
+        f = self.m._finding(tr.key, sig, i, float(h.values[i - h.base]), h.times[i - h.base], h)
+        self._keep(i, tr.rank, f, int(self.lines[i - h.base]))
 
     def _trim(self, end: int) -> None:
         """Drop what no later finding can look back on."""
