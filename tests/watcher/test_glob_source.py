@@ -61,6 +61,39 @@ def test_events_mode_picks_up_appends(tmp_path):
     assert [ln.data for ln in got] == lines
 
 
+def test_sources_in_one_directory_share_one_watch_and_wake_only_their_own(tmp_path):
+    """Many sources, one inotify thread per directory: a source is woken by its own file only,
+    keeps working after a neighbour stops, and the last to stop removes the watch."""
+    a, b = tmp_path / "head1.csv", tmp_path / "head2.csv"
+    a.write_bytes(b"")
+    b.write_bytes(b"")
+    sa = GlobSource("head1", str(a), poll="never", housekeeping=5.0)
+    sb = GlobSource("head2", str(b), poll="never", housekeeping=5.0)
+    sa.start()
+    threads_with_one = threading.active_count()
+    sb.start()
+    try:
+        assert sa._observer is sb._observer and sa._watch == sb._watch
+        assert threading.active_count() == threads_with_one  # the second source adds no thread
+        for src in (sa, sb):
+            src.poll_ready()
+        with open(a, "ab") as fh:
+            fh.write(b"1,2.5\n")
+        assert sa.wait(3.0) is True
+        assert sb.wait(0.3) is False  # the neighbour's append does not wake this source
+        assert [ln.data for ln in collect(sa, 1)] == [b"1,2.5"]
+        sa.stop()
+        sb.poll_ready()
+        with open(b, "ab") as fh:
+            fh.write(b"7,3.5\n")
+        assert sb.wait(3.0) is True  # the shared watch outlives the first source's stop
+        assert [ln.data for ln in collect(sb, 1)] == [b"7,3.5"]
+    finally:
+        sa.stop()
+        sb.stop()
+    assert sb._watch not in gs_mod._SHARED._users  # the last one unscheduled it
+
+
 def test_new_file_matching_the_glob_is_picked_up_while_running(tmp_path):
     (tmp_path / "shift-1.csv").write_bytes(b"s1-a\n")
     with GlobSource("line3", str(tmp_path / "shift-*.csv"), poll="never") as src:

@@ -21,7 +21,8 @@ beyond the observer's own wait:
 
 Event delivery
 --------------
-``poll='never'``: inotify (watchdog ``Observer``).  ``poll='always'``: stat
+``poll='never'``: inotify (watchdog ``Observer``, one for the whole process, shared
+by every source; see :class:`_SharedObserver`).  ``poll='always'``: stat
 polling every ``poll_interval`` seconds (watchdog ``PollingObserver``).
 ``poll='auto'``: polling when the watched directory is on a network file
 system (:mod:`watcher.sources.fsdetect`), where inotify never hears of writes
@@ -106,6 +107,51 @@ def path_matches(path: str, pattern: str) -> bool:
     return rec(path.split(os.sep), pattern.split(os.sep))
 
 
+class _SharedObserver:
+    """One inotify observer for every source of the process.
+
+    watchdog gives each watched directory one thread and each observer one more, which
+    dispatches to the handlers; sources watching the same directory share its watch.  With
+    an observer per source, 50 sources meant some 100 threads taking turns at the GIL with
+    the reading path, one event per appended line each.  Handlers are counted per watch:
+    the last source to stop unschedules it.
+    """
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._observer: Any = None
+        self._users: dict[Any, int] = {}
+
+    def schedule(self, handler: FileSystemEventHandler, path: str, recursive: bool) -> tuple[Any, Any]:
+        with self._lock:
+            if self._observer is None or not self._observer.is_alive():
+                obs = Observer()
+                obs.daemon = True
+                obs.start()
+                self._observer, self._users = obs, {}
+            watch = self._observer.schedule(handler, path, recursive=recursive, event_filter=WAKE_EVENTS)
+            self._users[watch] = self._users.get(watch, 0) + 1
+            return self._observer, watch
+
+    def release(self, obs: Any, watch: Any, handler: FileSystemEventHandler) -> None:
+        with self._lock:
+            if obs is not self._observer:
+                return  # an observer since replaced (it had died): nothing of it is left to release
+            left = self._users.get(watch, 1) - 1
+            try:
+                if left > 0:
+                    self._users[watch] = left
+                    obs.remove_handler_for_watch(handler, watch)
+                else:
+                    self._users.pop(watch, None)
+                    obs.unschedule(watch)
+            except KeyError:  # the watch went with its directory
+                self._users.pop(watch, None)
+
+
+_SHARED = _SharedObserver()
+
+
 class _Wake(FileSystemEventHandler):
     def __init__(self, source: "GlobSource") -> None:
         self.source = source
@@ -143,6 +189,7 @@ class GlobSource:
         self.rotate_grace = float(rotate_grace)
         self.start_at_end = start_at_end
         self.housekeeping = float(housekeeping)
+        self._glob = _has_glob(self.pattern)
         self.base_dir, rest = _split_pattern(self.pattern)
         self.recursive = len(rest) > 1 or "**" in rest
         self.changed_event = threading.Event()
@@ -152,6 +199,8 @@ class GlobSource:
         self._released: dict[tuple[int, int], dict[str, Any]] = {}
         self._reserved: set[tuple[int, int]] = set()
         self._observer = None
+        self._watch: Any = None  # our watch on the shared observer (events mode)
+        self._handler: Any = None
         self._lock = threading.Lock()
         self._rescan = True
         self._first_scan = True
@@ -174,16 +223,24 @@ class GlobSource:
     def _schedule(self) -> None:
         if self._observer is not None or not os.path.isdir(self.base_dir):
             return  # base directory missing: housekeeping rescans until it exists
-        obs = PollingObserver(timeout=self.poll_interval) if self.mode == "polling" else Observer()
-        obs.schedule(_Wake(self), self.base_dir, recursive=self.recursive, event_filter=WAKE_EVENTS)
-        obs.daemon = True
-        obs.start()
+        handler = _Wake(self)
+        if self.mode == "polling":  # its own observer: the interval is this source's
+            obs = PollingObserver(timeout=self.poll_interval)
+            obs.schedule(handler, self.base_dir, recursive=self.recursive, event_filter=WAKE_EVENTS)
+            obs.daemon = True
+            obs.start()
+            self._watch = None
+        else:
+            obs, self._watch = _SHARED.schedule(handler, self.base_dir, self.recursive)
+        self._handler = handler
         self._observer = obs
 
     def stop(self) -> None:
         """Stop the observer and close all files."""
         obs, self._observer = self._observer, None
-        if obs is not None:
+        if obs is not None and self._watch is not None:
+            _SHARED.release(obs, self._watch, self._handler)
+        elif obs is not None:
             obs.stop()
             obs.join(timeout=5)
         for f in self._followers.values():
@@ -224,7 +281,11 @@ class GlobSource:
         dest = getattr(event, "dest_path", "")
         if dest:
             paths.append(os.fsdecode(dest))
-        relevant = any(path_matches(p, self.pattern) or p in self._followers for p in paths)
+        # Sources in one directory share its watch, so most events are another source's:
+        # the cheap tests first.
+        glob = self._glob
+        relevant = any(p in self._followers or (path_matches(p, self.pattern) if glob else p == self.pattern)
+                       for p in paths)
         if not relevant and not any(f.draining for f in tuple(self._followers.values())):
             return  # unrelated file in the same directory
         if event.event_type in ("created", "moved", "deleted"):
