@@ -91,12 +91,12 @@ def absorbed_within(Q: np.ndarray, exit_prob: np.ndarray, start: np.ndarray, n: 
     if _iterate(n, Q.shape[0]):
         v = _flush(start)
         Q = _flush(Q)
-        total = 0.0
-        for _ in range(n):
-            total += float(v @ exit_prob)
+        occupied = v.copy()  # sum over t < n of start Q^t: one dot product at the end
+        for _ in range(n - 1):
             v = v @ Q
             v[np.abs(v) < _TINY] = 0.0
-        return total
+            occupied += v
+        return float(occupied @ exit_prob)
     A = _flush(Q)  # Q^(2^j)
     B = _flush(exit_prob)  # sum_{t < 2^j} Q^t e
     v = _flush(start)

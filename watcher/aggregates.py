@@ -256,6 +256,8 @@ def record_values(
     now = to_utc(now_iso) or datetime.now(timezone.utc)
     now_t = now.timestamp()
     taken = 0
+    # A line's time stamp is shared by every characteristic of the line: parse each text once.
+    epochs: dict[str, float | None] = {}
     for name, items in values_by_characteristic.items():
         lsl, usl = (limits or {}).get(name, (None, None))
         minutes: dict[int, Moments] = {}
@@ -265,8 +267,14 @@ def record_values(
             x = float(value)
             if not math.isfinite(x):
                 continue
-            dt = to_utc(time, tz) if time else None
-            t = dt.timestamp() if dt is not None else now_t
+            if time:
+                e = epochs.get(time, False)
+                if e is False:
+                    dt = to_utc(time, tz)
+                    e = epochs[time] = None if dt is None else dt.timestamp()
+            else:
+                e = None
+            t = now_t if e is None else e
             mk = int(t // MINUTE) * MINUTE
             hk = int(t // HOUR) * HOUR
             for key, store in ((mk, minutes), (hk, hours)):
@@ -278,7 +286,7 @@ def record_values(
                     m.below += 1
                 if usl is not None and x > usl:
                     m.above += 1
-                if dt is None:
+                if e is None:
                     m.untimed += 1
             samples.setdefault(hk, []).append(x)
             taken += 1

@@ -122,9 +122,11 @@ class Monitor:
                 return out
             value = sum(self.group) / self.k
             self.group = []
-        z = self._standardise(value)
+        raw = self._transformed(value)
+        b = self.baseline
+        z = (raw - b.centre) / b.sigma  # as _standardise, without transforming twice
         for key, det in self.detectors.items():
-            sig = det.update(z if det.needs_reference else self._transformed(value))
+            sig = det.update(z if det.needs_reference else raw)
             if sig is not None:
                 out.append(self._finding(key, sig, i, self.recent_values[-1], time, self._live))
         return out
