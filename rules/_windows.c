@@ -161,13 +161,14 @@ static PyObject *RunWindow_labels(RunWindow *self, PyObject *Py_UNUSED(ignored))
     return out;
 }
 
-static PyObject *RunWindow_values(RunWindow *self, PyObject *Py_UNUSED(ignored)) {
-    PyObject *out = PyList_New(self->count);
+/* the values of a ring of capacity w holding count values from head, oldest first, as a list */
+static PyObject *ring_values(const double *ring, Py_ssize_t head, Py_ssize_t count, Py_ssize_t w) {
+    PyObject *out = PyList_New(count);
     Py_ssize_t i;
     if (!out)
         return NULL;
-    for (i = 0; i < self->count; i++) {
-        PyObject *v = PyFloat_FromDouble(self->ring[(self->head + i) % self->w]);
+    for (i = 0; i < count; i++) {
+        PyObject *v = PyFloat_FromDouble(ring[(head + i) % w]);
         if (!v) {
             Py_DECREF(out);
             return NULL;
@@ -175,6 +176,10 @@ static PyObject *RunWindow_values(RunWindow *self, PyObject *Py_UNUSED(ignored))
         PyList_SET_ITEM(out, i, v);
     }
     return out;
+}
+
+static PyObject *RunWindow_values(RunWindow *self, PyObject *Py_UNUSED(ignored)) {
+    return ring_values(self->ring, self->head, self->count, self->w);
 }
 
 static PyObject *RunWindow_full(RunWindow *self, PyObject *Py_UNUSED(ignored)) {
@@ -290,19 +295,7 @@ static PyObject *KendallWindow_push(KendallWindow *self, PyObject *arg) {
 }
 
 static PyObject *KendallWindow_values(KendallWindow *self, PyObject *Py_UNUSED(ignored)) {
-    PyObject *out = PyList_New(self->count);
-    Py_ssize_t i;
-    if (!out)
-        return NULL;
-    for (i = 0; i < self->count; i++) {
-        PyObject *x = PyFloat_FromDouble(self->ring[(self->head + i) % self->w]);
-        if (!x) {
-            Py_DECREF(out);
-            return NULL;
-        }
-        PyList_SET_ITEM(out, i, x);
-    }
-    return out;
+    return ring_values(self->ring, self->head, self->count, self->w);
 }
 
 static PyObject *KendallWindow_state(KendallWindow *self, PyObject *Py_UNUSED(ignored)) {

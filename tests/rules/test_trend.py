@@ -346,11 +346,7 @@ def test_registered_and_validated():
 
 # -- the compiled window against the pure-Python reference ---------------------------------
 
-try:
-    from rules import _windows as compiled
-except ImportError:  # pragma: no cover - an install without a C compiler
-    compiled = None
-needs_compiled = pytest.mark.skipif(compiled is None, reason="compiled windows not built (no C compiler at install)")
+from tests.rules.compiled import compiled, needs_compiled
 
 
 @needs_compiled
