@@ -94,6 +94,28 @@ def test_sources_in_one_directory_share_one_watch_and_wake_only_their_own(tmp_pa
     assert sb._watch not in gs_mod._SHARED._users  # the last one unscheduled it
 
 
+def test_a_failing_source_handler_does_not_stop_the_shared_observer(tmp_path):
+    a, b = tmp_path / "bad.csv", tmp_path / "good.csv"
+    a.write_bytes(b"")
+    b.write_bytes(b"")
+    with GlobSource("bad", str(a), poll="never") as bad, GlobSource("good", str(b), poll="never") as good:
+        def broken(event):
+            raise RuntimeError("handler bug")
+
+        bad._on_fs_event = broken
+        for src in (bad, good):
+            src.poll_ready()
+        for _ in range(3):  # several events through the broken handler first
+            with open(a, "ab") as fh:
+                fh.write(b"1\n")
+            time.sleep(0.05)
+        with open(b, "ab") as fh:
+            fh.write(b"2\n")
+        assert good.wait(3.0) is True  # the shared thread survived the other source's error
+        assert bad.wait(0.5) is True  # and the failing source was woken to look for itself
+        assert [ln.data for ln in collect(good, 1)] == [b"2"]
+
+
 def test_new_file_matching_the_glob_is_picked_up_while_running(tmp_path):
     (tmp_path / "shift-1.csv").write_bytes(b"s1-a\n")
     with GlobSource("line3", str(tmp_path / "shift-*.csv"), poll="never") as src:

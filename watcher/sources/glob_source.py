@@ -157,7 +157,11 @@ class _Wake(FileSystemEventHandler):
         self.source = source
 
     def on_any_event(self, event: FileSystemEvent) -> None:
-        self.source._on_fs_event(event)
+        try:
+            self.source._on_fs_event(event)
+        except Exception:  # the observer thread is shared by every source: never let one stop it
+            self.source._rescan = True
+            self.source.changed_event.set()  # the source looks for itself on its next pass
 
 
 class GlobSource:
