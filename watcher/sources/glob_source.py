@@ -112,7 +112,7 @@ class _SharedObserver:
 
     watchdog gives each watched directory one thread and each observer one more, which
     dispatches to the handlers; sources watching the same directory share its watch.  With
-    an observer per source, 50 sources meant some 100 threads taking turns at the GIL with
+    an observer per source, 50 sources meant some 150 threads taking turns at the GIL with
     the reading path, one event per appended line each.  Handlers are counted per watch:
     the last source to stop unschedules it.
     """
