@@ -5,7 +5,9 @@
  * the window median (above / below / equal); kind 1 keeps the last w values and labels
  * their w - 1 successive differences by sign.  push(x) adds a value and returns None
  * until the window is full, then the summary of the zero-free label sequence:
- * (n_pos, n_neg, runs, longest run of +1, longest run of -1).
+ * (n_pos, n_neg, runs, longest run of +1, longest run of -1).  scan(x, out) pushes a
+ * whole float64 array and writes each push's result into an int64 array (-1s until the
+ * window is full): the vectorised scans of the detectors use it, one call per chunk.
  *
  * Same numbers as the pure-Python _MedianWindow / _DiffWindow with their ledgers (the
  * reference implementation, which tests/rules/test_runs_stream.py compares this with):
@@ -78,24 +80,31 @@ static Py_ssize_t lower_bound(const double *a, Py_ssize_t n, double x) {
     return lo;
 }
 
-/* labels of the held window, oldest first; returns how many */
+/* labels of the held window, oldest first; returns how many.  The ring is read in its
+ * two stretches (head..end, then start..) rather than with a modulo per value. */
 static Py_ssize_t fill_labels(RunWindow *self) {
     Py_ssize_t n = self->count, w = self->w, i;
+    Py_ssize_t seg = n < w - self->head ? n : w - self->head;
+    const double *a = self->ring + self->head, *b = self->ring - seg; /* value i: i < seg ? a[i] : b[i] */
     signed char *lab = self->lab;
     if (self->kind == 0) {
         Py_ssize_t h = n >> 1;
         double m = (n & 1) ? self->sorted[h] : (self->sorted[h - 1] + self->sorted[h]) / 2;
-        for (i = 0; i < n; i++) {
-            double v = self->ring[(self->head + i) % w];
-            lab[i] = (signed char)((v > m) - (v < m));
-        }
+        for (i = 0; i < seg; i++)
+            lab[i] = (signed char)((a[i] > m) - (a[i] < m));
+        for (; i < n; i++)
+            lab[i] = (signed char)((b[i] > m) - (b[i] < m));
         return n;
     }
+    if (n < 2)
+        return 0;
+    double prev = a[0];
     for (i = 1; i < n; i++) {
-        double a = self->ring[(self->head + i - 1) % w], b = self->ring[(self->head + i) % w];
-        lab[i - 1] = (signed char)((b > a) - (b < a));
+        double v = i < seg ? a[i] : b[i];
+        lab[i - 1] = (signed char)((v > prev) - (v < prev));
+        prev = v;
     }
-    return n > 0 ? n - 1 : 0;
+    return n - 1;
 }
 
 static void add_value(RunWindow *self, double x) {
@@ -118,6 +127,31 @@ static void add_value(RunWindow *self, double x) {
     self->count++;
 }
 
+/* summary of the zero-free labels of the full window: (n_pos, n_neg, runs, top_pos, top_neg) */
+static void run_summary(RunWindow *self, long long out[5]) {
+    Py_ssize_t n = fill_labels(self), i;
+    long long n_pos = 0, n_neg = 0, runs = 0, top_pos = 0, top_neg = 0, cur = 0;
+    int prev = 0;
+    /* branch-free: the labels are random, so branches on them would mostly mispredict */
+    for (i = 0; i < n; i++) {
+        int v = self->lab[i];
+        long long nz = v != 0, same = v == prev, up = v > 0, down = v < 0;
+        n_pos += up;
+        n_neg += down;
+        runs += nz & !same;
+        cur = nz ? same * cur + 1 : cur; /* zeros are skipped: the run goes on across them */
+        prev = nz ? v : prev;
+        long long cp = up ? cur : 0, cn = down ? cur : 0;
+        top_pos = cp > top_pos ? cp : top_pos;
+        top_neg = cn > top_neg ? cn : top_neg;
+    }
+    out[0] = n_pos;
+    out[1] = n_neg;
+    out[2] = runs;
+    out[3] = top_pos;
+    out[4] = top_neg;
+}
+
 static PyObject *RunWindow_push(RunWindow *self, PyObject *arg) {
     double x = PyFloat_AsDouble(arg);
     if (x == -1.0 && PyErr_Occurred())
@@ -125,30 +159,53 @@ static PyObject *RunWindow_push(RunWindow *self, PyObject *arg) {
     add_value(self, x);
     if (self->count < self->w)
         Py_RETURN_NONE;
-    Py_ssize_t n = fill_labels(self), i;
-    long n_pos = 0, n_neg = 0, runs = 0, top_pos = 0, top_neg = 0, cur = 0;
-    int prev = 0;
-    for (i = 0; i < n; i++) {
-        int v = self->lab[i];
-        if (!v)
-            continue;
-        if (v > 0)
-            n_pos++;
-        else
-            n_neg++;
-        if (v == prev) {
-            cur++;
-        } else {
-            runs++;
-            cur = 1;
-            prev = v;
-        }
-        if (v > 0 && cur > top_pos)
-            top_pos = cur;
-        if (v < 0 && cur > top_neg)
-            top_neg = cur;
+    long long r[5];
+    run_summary(self, r);
+    return Py_BuildValue("(LLLLL)", r[0], r[1], r[2], r[3], r[4]);
+}
+
+/* scan(x, out): push every value of the float64 buffer x; row i of the int64 buffer out
+ * (``width`` columns) gets the result of push i, or -1s while the window is not full. */
+static int scan_buffers(PyObject *args, Py_buffer *x, Py_buffer *out, Py_ssize_t width) {
+    PyObject *xo, *oo;
+    if (!PyArg_ParseTuple(args, "OO", &xo, &oo))
+        return -1;
+    if (PyObject_GetBuffer(xo, x, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0)
+        return -1;
+    if (PyObject_GetBuffer(oo, out, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | PyBUF_WRITABLE) < 0) {
+        PyBuffer_Release(x);
+        return -1;
     }
-    return Py_BuildValue("(lllll)", n_pos, n_neg, runs, top_pos, top_neg);
+    if (x->itemsize != 8 || !x->format || strcmp(x->format, "d") != 0 || out->itemsize != 8 || !out->format ||
+        (strcmp(out->format, "q") != 0 && strcmp(out->format, "l") != 0) ||
+        out->len / 8 < (x->len / 8) * width) {
+        PyErr_Format(PyExc_ValueError, "scan needs a float64 buffer and an int64 buffer of %zd columns per value", width);
+        PyBuffer_Release(x);
+        PyBuffer_Release(out);
+        return -1;
+    }
+    return 0;
+}
+
+static PyObject *RunWindow_scan(RunWindow *self, PyObject *args) {
+    Py_buffer x, out;
+    if (scan_buffers(args, &x, &out, 5) < 0)
+        return NULL;
+    const double *v = (const double *)x.buf;
+    long long *o = (long long *)out.buf;
+    Py_ssize_t n = x.len / 8, i, j;
+    for (i = 0; i < n; i++, o += 5) {
+        add_value(self, v[i]);
+        if (self->count < self->w) {
+            for (j = 0; j < 5; j++)
+                o[j] = -1;
+        } else {
+            run_summary(self, o);
+        }
+    }
+    PyBuffer_Release(&x);
+    PyBuffer_Release(&out);
+    Py_RETURN_NONE;
 }
 
 static PyObject *RunWindow_labels(RunWindow *self, PyObject *Py_UNUSED(ignored)) {
@@ -188,6 +245,7 @@ static PyObject *RunWindow_full(RunWindow *self, PyObject *Py_UNUSED(ignored)) {
 
 static PyMethodDef RunWindow_methods[] = {
     {"push", (PyCFunction)RunWindow_push, METH_O, "Add a value; None until full, then (n_pos, n_neg, runs, top_pos, top_neg)."},
+    {"scan", (PyCFunction)RunWindow_scan, METH_VARARGS, "scan(x, out): push each float64 of x; out (int64, 5 per value) gets each result, -1s until full."},
     {"labels", (PyCFunction)RunWindow_labels, METH_NOARGS, "The window's labels, oldest first."},
     {"values", (PyCFunction)RunWindow_values, METH_NOARGS, "The window's values, oldest first."},
     {"full", (PyCFunction)RunWindow_full, METH_NOARGS, "Whether the window holds w values."},
@@ -209,7 +267,8 @@ static PyTypeObject RunWindowType = {
  * sum t(t-1)(2t+5) of their tied groups, kept up to date as in MannKendallDetector's
  * pure-Python window (the reference): a value entering adds (#smaller - #larger) to S,
  * the oldest leaving removes (#larger - #smaller); both found by binary search in a
- * sorted copy.  push(x) returns None until the window is full, then (S, tie term).
+ * sorted copy.  push(x) returns None until the window is full, then (S, tie term);
+ * scan(x, out) pushes a whole array, as RunWindow.scan does.
  */
 
 typedef struct {
@@ -265,10 +324,7 @@ static int KendallWindow_init(KendallWindow *self, PyObject *args, PyObject *kwd
     return 0;
 }
 
-static PyObject *KendallWindow_push(KendallWindow *self, PyObject *arg) {
-    double v = PyFloat_AsDouble(arg);
-    if (v == -1.0 && PyErr_Occurred())
-        return NULL;
+static void kendall_add(KendallWindow *self, double v) {
     Py_ssize_t w = self->w, n = self->count, lo, hi;
     double *sl = self->sorted;
     if (n == w) {
@@ -289,9 +345,34 @@ static PyObject *KendallWindow_push(KendallWindow *self, PyObject *arg) {
     sl[hi] = v;
     self->ring[(self->head + n) % w] = v;
     self->count = n + 1;
-    if (self->count < w)
+}
+
+static PyObject *KendallWindow_push(KendallWindow *self, PyObject *arg) {
+    double v = PyFloat_AsDouble(arg);
+    if (v == -1.0 && PyErr_Occurred())
+        return NULL;
+    kendall_add(self, v);
+    if (self->count < self->w)
         Py_RETURN_NONE;
     return Py_BuildValue("(LL)", self->s, self->ties);
+}
+
+static PyObject *KendallWindow_scan(KendallWindow *self, PyObject *args) {
+    Py_buffer x, out;
+    if (scan_buffers(args, &x, &out, 2) < 0)
+        return NULL;
+    const double *v = (const double *)x.buf;
+    long long *o = (long long *)out.buf;
+    Py_ssize_t n = x.len / 8, i;
+    for (i = 0; i < n; i++, o += 2) {
+        kendall_add(self, v[i]);
+        int full = self->count == self->w;
+        o[0] = full ? self->s : -1;
+        o[1] = full ? self->ties : -1;
+    }
+    PyBuffer_Release(&x);
+    PyBuffer_Release(&out);
+    Py_RETURN_NONE;
 }
 
 static PyObject *KendallWindow_values(KendallWindow *self, PyObject *Py_UNUSED(ignored)) {
@@ -304,6 +385,7 @@ static PyObject *KendallWindow_state(KendallWindow *self, PyObject *Py_UNUSED(ig
 
 static PyMethodDef KendallWindow_methods[] = {
     {"push", (PyCFunction)KendallWindow_push, METH_O, "Add a value; None until full, then (S, tie term)."},
+    {"scan", (PyCFunction)KendallWindow_scan, METH_VARARGS, "scan(x, out): push each float64 of x; out (int64, 2 per value) gets (S, tie term), -1s until full."},
     {"values", (PyCFunction)KendallWindow_values, METH_NOARGS, "The window's values, oldest first."},
     {"state", (PyCFunction)KendallWindow_state, METH_NOARGS, "(values held, S, tie term)."},
     {NULL, NULL, 0, NULL}};

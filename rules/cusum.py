@@ -48,14 +48,20 @@ Example
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from typing import Any
 
 import numpy as np
 from scipy import optimize, special, stats
 
 from rules.detector import Signal, StateError, StreamDetector, check_float
-from rules.markov import absorbed_within, gauss_legendre
+from rules.markov import AbsorptionTable, absorbed_within, gauss_legendre
 from rules.registry import register
+
+try:  # the compiled recursion (rules/_recursions.c); resume's numpy blocks below do the same
+    from rules._recursions import cusum_until as _cusum_until
+except ImportError:  # not built (no compiler at install)
+    _cusum_until = None
 
 __all__ = [
     "Cusum",
@@ -214,6 +220,34 @@ def cusum_pvalue(k: float, level: float, n: int, start: float = 0.0, *, states: 
     return float(min(1.0, max(0.0, absorbed_within(Q, exit_prob, v, int(n)))))
 
 
+# Signals read their p-value from a table per (k, h): levels h .. h + 4 every 0.1
+# and horizons up to 512 readings.  Interpolation adds < 1e-6 relative to the
+# chain's own 1e-3 discretisation error (tests/rules/test_cusum.py); outside the
+# table, or with an untouched head start, the chain is computed directly.
+_TABLE_STEP, _TABLE_COUNT, _TABLE_MAX_N = 0.1, 41, 512
+
+
+@lru_cache(maxsize=16)
+def _pvalue_table(k: float, h: float, states: int = 150) -> AbsorptionTable:
+    def build(levels: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        chains = [cusum_markov_matrix(k, level, 0.0, states) for level in levels]
+        Q = np.stack([c[0] for c in chains])
+        e = np.stack([c[1] for c in chains])
+        return e[:, 0], Q[:, 0, :].copy(), Q, e  # a fresh side starts in state 0
+
+    return AbsorptionTable(build, lo=h, step=_TABLE_STEP, count=_TABLE_COUNT, max_steps=_TABLE_MAX_N, first_block=16)
+
+
+def signal_pvalue(k: float, h: float, level: float, n: int, start: float = 0.0) -> float:
+    """:func:`cusum_pvalue` as a :class:`Cusum` signal reports it: read from the
+    table of its (k, h) where that reaches, computed directly elsewhere."""
+    if start == 0.0:
+        p = _pvalue_table(k, h).pvalue(level, n)
+        if p is not None:
+            return min(1.0, p)
+    return cusum_pvalue(k, level, n, start)
+
+
 # ----------------------------------------------------------------- detector
 
 
@@ -233,7 +267,8 @@ class Cusum(StreamDetector):
     * ``size``: Montgomery's estimate of the shift after onset, ``k + C/N``
       (sign by side), N = readings since onset (with a head start that has not
       yet decayed to zero, C still contains it, so the estimate runs high);
-    * ``p_value``: :func:`cusum_pvalue` of the observed level C within N readings;
+    * ``p_value``: :func:`cusum_pvalue` of the observed level C within N readings
+      (read from a table per (k, h), see :func:`signal_pvalue`);
     * ``statistic``: C.
 
     After a signal both sides restart (at 0, or at ``headstart`` with FIR).
@@ -309,7 +344,7 @@ class Cusum(StreamDetector):
         return Signal(
             pattern="shift",
             detector=self.name,
-            p_value=cusum_pvalue(self.k, level, n, start),
+            p_value=signal_pvalue(self.k, self.h, level, n, start),
             index=t,
             onset_index=last_zero + 1,
             direction="up" if up else "down",
@@ -365,14 +400,17 @@ class Cusum(StreamDetector):
         """Signals over ``x`` continuing from this detector's state, identical to ``update``
         on each value in turn (and the state afterwards is the same).
 
-        Vectorised per block with ``cumsum`` and ``minimum.accumulate`` (the Lindley
+        Where ``rules._recursions`` is built, ``update``'s own arithmetic runs in C up
+        to each signal.  Otherwise vectorised per block with ``cumsum`` and ``minimum.accumulate`` (the Lindley
         form, which adds in the same order as ``update``, so values are bit-identical);
         after a signal the block restarts at the next value.
         """
         det = self
-        x = np.asarray(x, dtype=float).ravel()
+        x = np.ascontiguousarray(x, dtype=float).ravel()
         if not np.all(np.isfinite(x)):
             raise ValueError(f"value must be finite, got {x[~np.isfinite(x)][0]!r}")
+        if _cusum_until is not None:
+            return self._resume_compiled(x)
         out: list[Signal] = []
         n = x.size
         base = det._t  # index of x[0] in this detector's own count
@@ -408,4 +446,23 @@ class Cusum(StreamDetector):
             else:
                 block = min(block * 2, 1 << 16)
             pos += stop + 1
+        return out
+
+    def _resume_compiled(self, x: np.ndarray) -> list[Signal]:
+        """:meth:`resume` by the compiled loop: ``update``'s arithmetic, run in C up to each signal."""
+        out: list[Signal] = []
+        base, pos, n = self._t, 0, x.size
+        while pos < n:
+            (stop, self._sp, self._mp, self._sn, self._mn, self._zp, self._zn, self._fp, self._fn, self._t) = _cusum_until(
+                x, pos, self.k, self.h, self._sp, self._mp, self._sn, self._mn, self._zp, self._zn, self._fp, self._fn,
+                self._t)
+            cp, cn = self.upper, self.lower
+            if stop < 0:
+                self.last = cp if cp >= cn else cn
+                break
+            up = cp >= cn
+            out.append(self._signal(base + stop, cp if up else cn, self._zp if up else self._zn,
+                                    self._fp if up else self._fn, up))
+            self._restart()
+            pos = stop + 1
         return out

@@ -38,14 +38,20 @@ Example
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from typing import Any
 
 import numpy as np
 from scipy import optimize, signal, special
 
 from rules.detector import Signal, StateError, StreamDetector, check_choice, check_float
-from rules.markov import absorbed_within_all, gauss_legendre
+from rules.markov import AbsorptionTable, absorbed_within_all, gauss_legendre
 from rules.registry import register
+
+try:  # the compiled recursion (rules/_recursions.c); resume's numpy blocks below do the same
+    from rules._recursions import ewma_until as _ewma_until
+except ImportError:  # not built (no compiler at install)
+    _ewma_until = None
 
 __all__ = ["Ewma", "ewma_arl", "ewma_L_for_arl", "ewma_signal_probability", "ewma_sd"]
 
@@ -204,6 +210,44 @@ def ewma_L_for_arl(lam: float, arl0: float, time_varying: bool = False) -> float
     return float(optimize.brentq(f, lo, hi, xtol=1e-9))
 
 
+# Signals of a chart with asymptotic limits read their p-value from a table per
+# (lam, L): standardised levels L .. L + 3 every 0.025, horizons up to 512, with the
+# node count of the top of the grid.  It agrees with the direct computation to about
+# 1e-6 relative (tests/rules/test_ewma.py); outside it, and with exact limits, the
+# integral equation is solved directly.
+_TABLE_STEP, _TABLE_COUNT, _TABLE_MAX_N = 0.025, 121, 512
+
+
+@lru_cache(maxsize=16)
+def _pvalue_table(lam: float, L: float) -> AbsorptionTable:
+    nodes = _auto_nodes(lam, L + _TABLE_STEP * (_TABLE_COUNT - 1), 1.6, 10, 16, 240)
+
+    def build(levels: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        first, v1, Q, e = [], [], [], []
+        for r in levels:
+            st = _Steps(lam, float(r), 0.0, False, nodes)
+            K1, ex1 = st.kernel(np.zeros(1), 1)  # from e_0 = 0
+            K, ex = st.kernel(st.inf[0], 1)
+            first.append(ex1[0])
+            v1.append(K1[0])
+            Q.append(K)
+            e.append(ex)
+        return np.array(first), np.stack(v1), np.stack(Q), np.stack(e)
+
+    return AbsorptionTable(build, lo=L, step=_TABLE_STEP, count=_TABLE_COUNT, max_steps=_TABLE_MAX_N, first_block=16)
+
+
+def signal_probability(lam: float, L: float, r: float, n: int, time_varying: bool) -> float:
+    """:func:`ewma_signal_probability` ``(lam, r, n, time_varying)`` as an :class:`Ewma`
+    signal with multiplier ``L`` reports it: from the table of (lam, L) where that
+    reaches (asymptotic limits), computed directly elsewhere."""
+    if not time_varying:
+        p = _pvalue_table(lam, L).pvalue(r, n)
+        if p is not None:
+            return min(1.0, p)
+    return ewma_signal_probability(lam, r, n, time_varying)
+
+
 @register
 class Ewma(StreamDetector):
     """Two-sided EWMA chart (Roberts 1959) on standardised values.
@@ -222,7 +266,8 @@ class Ewma(StreamDetector):
     * ``p_value``: :func:`ewma_signal_probability` at the observed standardised
       level r = |e_i| / sd_i and the readings since restart i: the in-control
       probability that the same chart with multiplier r (same limit type)
-      signals within i readings;
+      signals within i readings (with asymptotic limits read from a table per
+      (lam, L), see :func:`signal_probability`);
     * ``statistic``: e_i.
 
     After a signal the EWMA restarts at e_0 = 0 (and the exact limits start over).
@@ -287,7 +332,7 @@ class Ewma(StreamDetector):
     def _signal(self, t: int) -> Signal:
         sd = math.sqrt(self._c * (1.0 - self._f)) if self._exact else math.sqrt(self._c)
         r = abs(self._z) / sd
-        p = ewma_signal_probability(self.lam, r, self._i, self._exact)
+        p = signal_probability(self.lam, self.L, r, self._i, self._exact)
         n_on = t - self._rstart + 1
         return Signal(
             pattern="shift",
@@ -345,14 +390,17 @@ class Ewma(StreamDetector):
         """Signals over ``x`` continuing from this detector's state, identical to ``update``
         on each value in turn (and the state afterwards is the same).
 
-        The EWMA is computed per block by ``scipy.signal.lfilter`` (same arithmetic
+        Where ``rules._recursions`` is built, ``update``'s own arithmetic runs in C up
+        to each signal.  Otherwise the EWMA is computed per block by ``scipy.signal.lfilter`` (same arithmetic
         as the recursion), the exact-limit factor by ``cumprod``; after a signal the
         block restarts at the next value.
         """
         det = self
-        x = np.asarray(x, dtype=float).ravel()
+        x = np.ascontiguousarray(x, dtype=float).ravel()
         if not np.all(np.isfinite(x)):
             raise ValueError(f"value must be finite, got {x[~np.isfinite(x)][0]!r}")
+        if _ewma_until is not None:
+            return self._resume_compiled(x)
         out: list[Signal] = []
         n = x.size
         base = det._t  # index of x[0] in this detector's own count
@@ -394,4 +442,20 @@ class Ewma(StreamDetector):
             else:
                 block = min(block * 2, 1 << 16)
             pos += stop + 1
+        return out
+
+    def _resume_compiled(self, x: np.ndarray) -> list[Signal]:
+        """:meth:`resume` by the compiled loop: ``update``'s arithmetic, run in C up to each signal."""
+        out: list[Signal] = []
+        base, pos, n = self._t, 0, x.size
+        while pos < n:
+            (stop, self._z, self._f, self._i, self._rs, self._rstart, self._rsum, self._t) = _ewma_until(
+                x, pos, self.lam, self._q, self.L, self._c, self._q2, self._exact, self._w_inf, self._z, self._f,
+                self._i, self._rs, self._rstart, self._rsum, self._t)
+            if stop < 0:
+                self.last = self._z
+                break
+            out.append(self._signal(base + stop))
+            self._restart()
+            pos = stop + 1
         return out

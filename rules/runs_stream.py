@@ -23,6 +23,8 @@ Compiled windows: where ``rules._windows`` is built (``rules/_windows.c``) and t
 readings, the window is its ``RunWindow``, which keeps the values and a sorted copy in C and recomputes
 the labels and their run summary on every reading (O(w) simple steps, far cheaper than the Python
 bookkeeping below).  The Python windows are the reference and the fallback; both give the same numbers.
+The batch ``scan`` of the median detectors pushes the whole array through the same compiled window
+(``RunWindow.scan``); the numpy kernels below are its fallback, and the tests run both.
 
 Incremental bookkeeping (the Python windows): the window's labels (+1 / -1 / 0) live in a ring buffer and a
 :class:`_RunLedger` keeps the counts, the number of runs of the zero-free label
@@ -505,6 +507,8 @@ class _WindowRunDetector(StreamDetector):
 
     def _summary(self, a: np.ndarray):
         if self.WINDOW_KIND == "median":
+            if _RunWindow is not None and self.window <= _COMPILED_MAX_W:
+                return _median_summary_compiled(a, self.window, self.NEED_RUNS, self.NEED_TOP)
             return _median_summary(a, self.window, self.NEED_RUNS, self.NEED_TOP)
         return _diff_summary(a, self.window, self.NEED_TOP)
 
@@ -640,6 +644,19 @@ def _median_summary(a: np.ndarray, w: int, need_runs: bool = True, need_top: boo
                     dst[rd[sub]] = src
         out[2][i0 : i0 + nb], out[3][i0 : i0 + nb], out[4][i0 : i0 + nb] = res
     return out
+
+
+def _median_summary_compiled(a: np.ndarray, w: int, need_runs: bool = True, need_top: bool = True):
+    """:func:`_median_summary` by the compiled window pushed along ``a`` (O(w) per value
+    in C); the columns not needed are zeroed, as the numpy kernel leaves them."""
+    out = np.empty((a.size, 5), dtype=np.int64)
+    _RunWindow(w, 0).scan(np.ascontiguousarray(a, dtype=float), out)
+    cols = out[w - 1 :].T
+    if not need_runs:
+        cols[2] = 0
+    if not need_top:
+        cols[3:] = 0
+    return list(cols)
 
 
 def _range_max_table(v: np.ndarray, max_span: int) -> np.ndarray:

@@ -515,8 +515,10 @@ class MannKendallDetector(StreamDetector):
     def scan(cls, x: Any, **params: Any) -> list[Signal]:
         """Signals over ``x`` from a fresh start, identical to feeding ``update``.
 
-        S of every full window comes from per-lag cumulative sums of sgn
-        differences (O(n w) vectorised); after a signal the window restarts,
+        S and the tie term of every full window come from the compiled window
+        pushed along ``x`` (``KendallWindow.scan``), or without it from per-lag
+        cumulative sums of sgn differences (O(n w) vectorised) and
+        :meth:`_window_tie_terms`; after a signal the window restarts,
         which only means the next window must end at least ``window`` values later.
         """
         det = cls(**params)
@@ -528,13 +530,18 @@ class MannKendallDetector(StreamDetector):
         if n < w:
             return []
         m = n - w + 1  # windows [start, start + w)
-        starts = np.arange(m)
-        s_all = np.zeros(m, dtype=np.int64)
-        for k in range(1, w):
-            d = np.sign(a[k:] - a[:-k]).astype(np.int64)
-            c = np.concatenate(([0], np.cumsum(d)))
-            s_all += c[starts + (w - k)] - c[starts]
-        ties = cls._window_tie_terms(a, w)
+        if _CKendallWindow is not None and w <= _C_MAX_W:  # the compiled window pushed along a
+            st = np.empty((n, 2), dtype=np.int64)
+            _CKendallWindow(w).scan(np.ascontiguousarray(a), st)
+            s_all, ties = st[w - 1 :, 0].copy(), st[w - 1 :, 1].copy()
+        else:
+            starts = np.arange(m)
+            s_all = np.zeros(m, dtype=np.int64)
+            for k in range(1, w):
+                d = np.sign(a[k:] - a[:-k]).astype(np.int64)
+                c = np.concatenate(([0], np.cumsum(d)))
+                s_all += c[starts + (w - k)] - c[starts]
+            ties = cls._window_tie_terms(a, w)
         npairs = w * (w - 1) // 2
         var = (w * (w - 1) * (2 * w + 5) - ties) / 18.0
         exact = (ties == 0) & (w <= EXACT_MAX_N)

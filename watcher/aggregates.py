@@ -188,6 +188,18 @@ class Moments:
         return cls(int(r[0]), float(r[1]), float(r[2]), float(r[3]), float(r[4]), int(r[5]), int(r[6]), int(r[7]))
 
 
+def _moments_of(vals: list[float], lsl: float | None, usl: float | None, untimed: int) -> Moments:
+    """Moments of a list of readings by two passes: mean from the exactly rounded sum
+    (``math.fsum``), then M2 = sum (x - mean)^2 (the two-pass form, at least as accurate
+    as Welford's update; Chan, Golub & LeVeque 1983)."""
+    n = len(vals)
+    mean = math.fsum(vals) / n
+    m2 = math.fsum([(x - mean) * (x - mean) for x in vals])
+    below = sum(1 for x in vals if x < lsl) if lsl is not None else 0
+    above = sum(1 for x in vals if x > usl) if usl is not None else 0
+    return Moments(n, mean, m2, min(vals), max(vals), below, above, untimed)
+
+
 # -- writing (inside the caller's batch transaction) ------------------------------------------
 
 
@@ -226,7 +238,7 @@ def _sample_into(conn: sqlite3.Connection, name: str, t0: int, values: Sequence[
         if len(res) < k:
             res.append(x)
         else:
-            j = rng.randrange(seen)
+            j = int(rng.random() * seen)  # uniform on 0 .. seen-1 (bias below seen / 2^53); randrange is ~10x slower
             if j < k:
                 res[j] = x
     conn.execute("INSERT OR REPLACE INTO agg_sample (characteristic, t0, seen, vals) VALUES (?,?,?,?)",
@@ -260,8 +272,8 @@ def record_values(
     epochs: dict[str, float | None] = {}
     for name, items in values_by_characteristic.items():
         lsl, usl = (limits or {}).get(name, (None, None))
-        minutes: dict[int, Moments] = {}
-        hours: dict[int, Moments] = {}
+        by_minute: dict[int, list[float]] = {}
+        untimed: dict[int, int] = {}
         samples: dict[int, list[float]] = {}
         for value, time in items:
             x = float(value)
@@ -276,20 +288,21 @@ def record_values(
                 e = None
             t = now_t if e is None else e
             mk = int(t // MINUTE) * MINUTE
-            hk = int(t // HOUR) * HOUR
-            for key, store in ((mk, minutes), (hk, hours)):
-                m = store.get(key)
-                if m is None:
-                    m = store[key] = Moments()
-                m.add(x)
-                if lsl is not None and x < lsl:
-                    m.below += 1
-                if usl is not None and x > usl:
-                    m.above += 1
-                if e is None:
-                    m.untimed += 1
-            samples.setdefault(hk, []).append(x)
+            got = by_minute.get(mk)
+            if got is None:
+                got = by_minute[mk] = []
+            got.append(x)
+            if e is None:
+                untimed[mk] = untimed.get(mk, 0) + 1
+            samples.setdefault(int(t // HOUR) * HOUR, []).append(x)
             taken += 1
+        # each minute's readings summed at once, the hours merged from their minutes
+        minutes = {mk: _moments_of(vals, lsl, usl, untimed.get(mk, 0)) for mk, vals in by_minute.items()}
+        hours: dict[int, Moments] = {}
+        for mk, m in minutes.items():
+            hk = mk // HOUR * HOUR
+            h = hours.get(hk)
+            hours[hk] = Moments().merge(m) if h is None else h.merge(m)  # a copy: the minute stays as it is
         _merge_rows(conn, "agg_minute", name, minutes)
         _merge_rows(conn, "agg_hour", name, hours)
         for hk, vals in samples.items():

@@ -610,6 +610,10 @@ class _CsvBlocks:
         use = np.flatnonzero(good)
         if use.size:
             s = _gather(arr, fs[use], ln[use])
+            iso = _epoch_iso(s)
+            if iso is not None:
+                out[use] = iso
+                return out, good
             enc = self.src.encoding
             for q, raw in zip(use.tolist(), s.tolist()):
                 try:
@@ -617,6 +621,33 @@ class _CsvBlocks:
                 except ValueError:
                     good[q] = False
         return out, good
+
+
+_EPOCH_MAX = 253402300800.0  # 10000-01-01: datetime's range ends before it
+
+
+def _epoch_iso(fields: np.ndarray) -> np.ndarray | None:
+    """The ISO text ``parse_time`` gives for fields that are all epoch seconds, or None.
+
+    Same arithmetic as CPython's ``datetime.fromtimestamp``: whole seconds by floor, the
+    fraction to microseconds rounded half to even, carried into the seconds at 10^6;
+    ``isoformat`` leaves the microseconds out when they are 0.  Anything else (a field
+    that is not a number, a negative, non-finite or out-of-range time) returns None and
+    the caller parses line by line, with the live parser's messages."""
+    try:
+        x = fields.astype(np.float64)
+    except ValueError:
+        return None
+    if not (np.all(x >= 0.0) and np.all(x < _EPOCH_MAX)):  # NaN fails both
+        return None
+    sec = np.floor(x)
+    us = np.rint((x - sec) * 1e6)
+    carry = us >= 1e6
+    us[carry] -= 1e6
+    sec[carry] += 1.0
+    stamp = sec.astype(np.int64).astype("datetime64[s]") + us.astype(np.int64).astype("timedelta64[us]")
+    text = np.datetime_as_string(stamp, unit="us")  # YYYY-MM-DDTHH:MM:SS.ffffff
+    return np.where(us == 0, np.char.add(text.astype("U19"), "+00:00"), np.char.add(text, "+00:00")).astype(object)
 
 
 _EMPTY = (np.empty(0), np.empty(0, dtype=np.int64), np.empty(0, dtype=object))

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from datetime import datetime
+from functools import lru_cache
 from typing import Any, Iterable, Protocol
 
 from watcher.config import Config, SourceConfig
@@ -106,9 +107,24 @@ class Route:
         return b
 
 
+@lru_cache(maxsize=4096)
+def _instant(text: str) -> datetime | None:
+    """A time text as a datetime, parsed once: every characteristic of a line, and the
+    next line's check, ask about the same few texts."""
+    try:
+        return datetime.fromisoformat(text)
+    except (TypeError, ValueError):
+        return None
+
+
 def _earlier(a: str, b: str) -> bool:
     """Is time a before time b?  Readings are taken in arrival order either way; this only flags it."""
+    if a == b:
+        return False
+    da, db = _instant(a), _instant(b)
+    if da is None or db is None:
+        return False
     try:
-        return datetime.fromisoformat(a) < datetime.fromisoformat(b)
-    except (TypeError, ValueError):  # naive against aware: cannot tell
+        return da < db
+    except TypeError:  # naive against aware: cannot tell
         return False

@@ -21,7 +21,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import rules.cusum as cusum_mod
-from rules.cusum import Cusum, cusum_arl, cusum_arl_siegmund, cusum_h_for_arl, cusum_pvalue
+from rules.cusum import Cusum, cusum_arl, cusum_arl_siegmund, cusum_h_for_arl, cusum_pvalue, signal_pvalue
 from rules.detector import StateError
 from rules.registry import DETECTORS
 
@@ -227,8 +227,23 @@ def test_signal_carries_the_defined_pvalue():
     for s in sigs:
         n = s.index - s.onset_index + 1
         assert s.detail["readings_since_zero"] == n
-        assert s.p_value == cusum_pvalue(0.5, s.statistic, n, 0.0)
+        assert s.p_value == pytest.approx(cusum_pvalue(0.5, s.statistic, n, 0.0), rel=1e-6)
         assert s.size == pytest.approx((0.5 + s.statistic / n) * (1 if s.direction == "up" else -1))
+
+
+def test_tabled_signal_pvalue_matches_the_chain():
+    # The table per (k, h) (4-point interpolation in log p every 0.1 of level) must agree
+    # with the direct chain far inside the chain's own 1e-3 discretisation error.
+    rng = np.random.default_rng(11)
+    for k, h in ((0.5, 4.77), (0.25, 8.0)):
+        for _ in range(60):
+            level = h + rng.uniform(0.0, 4.0)
+            n = int(rng.integers(1, 513))
+            assert signal_pvalue(k, h, level, n) == pytest.approx(cusum_pvalue(k, level, n), rel=1e-6)
+    # beyond the table (level, horizon) or with an untouched head start: the chain itself
+    assert signal_pvalue(0.5, 4.77, 9.5, 10) == cusum_pvalue(0.5, 9.5, 10)
+    assert signal_pvalue(0.5, 4.77, 5.2, 600) == cusum_pvalue(0.5, 5.2, 600)
+    assert signal_pvalue(0.5, 4.77, 5.2, 30, 2.0) == cusum_pvalue(0.5, 5.2, 30, 2.0)
 
 
 # -- worked example ----------------------------------------------------------------------

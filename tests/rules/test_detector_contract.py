@@ -113,3 +113,29 @@ def test_resume_in_chunks_equals_stream(key, seed, kind, cuts):
     got = [s for a, b in zip(bounds, bounds[1:]) for s in det.resume(x[a:b])]
     assert got == feed(ref, x)
     assert det.export_state() == ref.export_state()
+
+
+RECURSIONS = [("cusum", {}, "_cusum_until"), ("cusum", {"k": 0.25, "h": 8.0, "headstart": 4.0}, "_cusum_until"),
+              ("ewma", {}, "_ewma_until"), ("ewma", {"lam": 0.3, "L": 2.9, "limits": "asymptotic"}, "_ewma_until")]
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.sampled_from(RECURSIONS), st.integers(0, 2**32 - 1), st.sampled_from(["plain", "shift", "drift", "ties"]),
+       st.lists(st.integers(0, 400), min_size=1, max_size=6), st.booleans())
+def test_cusum_ewma_resume_both_kernels_equal_stream(case, seed, kind, cuts, numpy_kernel):
+    """The compiled recursion and the numpy blocks (``numpy_kernel``) both give the
+    streaming loop's signals, end state and last statistic, in any pieces."""
+    import importlib
+
+    from tests.rules.compiled import python_only
+
+    key, params, name = case
+    module = importlib.import_module(DETECTORS[key].__module__)
+    x = stream(np.random.default_rng(seed), 1200, kind)
+    bounds = np.cumsum([0] + cuts).clip(0, x.size).tolist() + [x.size]
+    det, ref = DETECTORS[key](**params), DETECTORS[key](**params)
+    want = feed(ref, x)
+    with python_only(module, name, numpy_kernel):
+        got = [s for a, b in zip(bounds, bounds[1:]) for s in det.resume(x[a:b])]
+    assert got == want
+    assert det.export_state() == ref.export_state() and det.last == ref.last

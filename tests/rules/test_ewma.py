@@ -20,7 +20,7 @@ from scipy import stats
 
 import rules.ewma as ewma_mod
 from rules.detector import StateError
-from rules.ewma import Ewma, ewma_arl, ewma_L_for_arl, ewma_sd, ewma_signal_probability
+from rules.ewma import Ewma, ewma_arl, ewma_L_for_arl, ewma_sd, ewma_signal_probability, signal_probability
 from rules.registry import DETECTORS
 
 
@@ -207,6 +207,27 @@ def test_signal_carries_the_defined_pvalue():
         assert r == pytest.approx(abs(s.statistic) / ewma_sd(0.1, i), rel=1e-9)
         assert s.p_value == ewma_signal_probability(0.1, r, i, True)
         assert s.size == pytest.approx(np.mean(x[s.onset_index : s.index + 1]))
+    # asymptotic limits: the p-value comes from the table, within its stated 1e-6
+    sigs = Ewma.scan(x, limits="asymptotic")
+    assert sigs
+    for s in sigs:
+        r, i = s.detail["standardised_level"], s.detail["readings_since_restart"]
+        assert s.p_value == pytest.approx(ewma_signal_probability(0.1, r, i, False), rel=1e-6)
+
+
+def test_tabled_signal_probability_matches_the_integral_equation():
+    # Table per (lam, L) read by interpolation in log p every 0.025 of standardised level,
+    # against the direct finite-horizon solution (which has its own ~1e-6 node error).
+    rng = np.random.default_rng(12)
+    for lam, L in ((0.1, 2.7), (0.2, 2.86)):
+        for _ in range(60):
+            r = L + rng.uniform(0.0, 3.0)
+            n = int(rng.integers(1, 513))
+            assert signal_probability(lam, L, r, n, False) == pytest.approx(ewma_signal_probability(lam, r, n, False), rel=1e-6)
+    # outside the table, and with exact limits, the direct solution itself
+    assert signal_probability(0.1, 2.7, 6.5, 10, False) == ewma_signal_probability(0.1, 6.5, 10, False)
+    assert signal_probability(0.1, 2.7, 3.0, 600, False) == ewma_signal_probability(0.1, 3.0, 600, False)
+    assert signal_probability(0.1, 2.7, 3.0, 30, True) == ewma_signal_probability(0.1, 3.0, 30, True)
 
 
 # -- worked example ---------------------------------------------------------------------------------

@@ -57,6 +57,8 @@ def _times(kind: str, n: int) -> list[str]:
     base = 1767337200
     if kind == "epoch":
         return [str(base + 2 * i) for i in range(n)]
+    if kind == "epoch-fraction":  # sub-second epochs, some on a half microsecond
+        return [repr(base + 1.7 * i + (i % 7) * 5e-7) for i in range(n)]
     if kind == "iso-space":
         return [f"2026-01-02 {(i // 3600) % 24:02d}:{(i // 60) % 60:02d}:{i % 60:02d}" for i in range(n)]
     return [f"2026-01-02T{(i // 3600) % 24:02d}:{(i // 60) % 60:02d}:{i % 60:02d}Z" for i in range(n)]
@@ -78,7 +80,7 @@ def streams(draw):
     step = draw(st.sampled_from([0.001, 0.1, 0.5, 1.0]))  # coarse steps give many ties
     x = np.round(x / step) * step
     lane = 1.0 + (np.arange(n) % 2) if draw(st.booleans()) else np.round(rng.normal(3, 1, n), 1)
-    time_kind = draw(st.sampled_from(["iso", "epoch", "iso-space", "none"]))
+    time_kind = draw(st.sampled_from(["iso", "epoch", "epoch-fraction", "iso-space", "none"]))
     times = _times(time_kind, n)
     odd = draw(st.lists(st.tuples(st.integers(0, n), st.sampled_from(range(len(ODD_LINES)))), max_size=25))
     header_change = draw(st.one_of(st.none(), st.integers(1, n)))
@@ -163,6 +165,22 @@ def test_fast_replay_equals_live(tmp_path_factory, s, window, chunk, block, limi
                             on_finding=streamed.append)
     assert rest.findings == []
     assert [f.to_dict() for f in streamed] == [f.to_dict() for f in live.findings]
+
+
+def test_epoch_times_in_bulk_read_as_the_live_parser_reads_them():
+    # reference: parse_time, i.e. CPython's datetime.fromtimestamp(..., utc).isoformat()
+    from watcher.parse import parse_time
+    from watcher.replay_fast import _epoch_iso
+
+    rng = np.random.default_rng(5)
+    x = np.concatenate([rng.integers(0, 4_000_000_000, 3000).astype(float), rng.uniform(0, 4e9, 3000),
+                        [0.0, 0.9999995, 1.0000005, 2.5e-6, 1767337200.9999996, 253402300799.0]])  # fmt: skip
+    fields = np.array([repr(float(v)) for v in x] + ["1767337200"]).astype("S")
+    want = [parse_time(b.decode()) for b in fields.tolist()]
+    assert _epoch_iso(fields).tolist() == want
+    # anything else goes line by line
+    for odd in (b"2026-01-02T07:00:00Z", b"-5", b"nan", b"inf", b"1e300"):
+        assert _epoch_iso(np.array([b"1767337200", odd])) is None
 
 
 def test_a_known_stream_has_findings_and_bad_lines(tmp_path):
