@@ -100,6 +100,8 @@ class LineParser:
         self.file = file
         self.header: list[str] | None = None
         self._index: dict[str, int] = {}
+        self._names: set[str] = set()
+        self._plan: list[tuple[Column, int | None]] = []
 
     # -- public --------------------------------------------------------------
     def parse(self, data: bytes, line_no: int | None = None, offset: int | None = None) -> tuple[list[Reading], Quarantined | None]:
@@ -112,6 +114,9 @@ class LineParser:
     def set_header(self, header: list[str]) -> None:
         self.header = header
         self._index = {name: i for i, name in enumerate(header)}
+        self._names = set(header)
+        # each value column's field position, resolved once per header (None: not in it)
+        self._plan = [(col, self._index.get(col.column)) for col in self.columns]
 
     # -- internals -----------------------------------------------------------
     def _bad(self, data: bytes, line_no: int | None, offset: int | None, reason: str) -> Quarantined:
@@ -160,7 +165,7 @@ class LineParser:
         if self.header is None:
             return [], self._bad(data, line_no, offset, "no header known for this file (its first line was never read)")
         if len(fields) != len(self.header):
-            if _is_other_header(fields, self.header, self.decimal):
+            if _is_other_header(fields, self.header, self._names, self.decimal):
                 return [], self._new_header(fields, data, line_no, offset)
             if fields == self.header:
                 return [], None  # a repeated header (files concatenated): skip quietly
@@ -169,7 +174,7 @@ class LineParser:
             )
         if fields == self.header:
             return [], None
-        if _is_other_header(fields, self.header, self.decimal):
+        if _is_other_header(fields, self.header, self._names, self.decimal):
             return [], self._new_header(fields, data, line_no, offset)
         time = None
         if self.time_column:
@@ -181,15 +186,15 @@ class LineParser:
             except ValueError as e:
                 return [], self._bad(data, line_no, offset, f"unparseable time: {e}")
         out = []
-        for col in self.columns:
-            i = self._index.get(col.column)
+        point = self.decimal == "."
+        for col, i in self._plan:
             if i is None:
                 return [], self._bad(data, line_no, offset, f"no column {col.column!r} in the header")
             raw = fields[i]
             if raw == "":
                 continue  # an empty cell: this characteristic was not measured on this line
             try:
-                v = to_float(raw, self.decimal)
+                v = float(raw) if point else to_float(raw, self.decimal)  # the field is stripped and not empty
             except ValueError:
                 return [], self._bad(data, line_no, offset, f"column {col.column!r}: not a number: {raw[:40]!r}")
             if not math.isfinite(v):
@@ -237,8 +242,8 @@ def _looks_numeric(field: str, decimal: str) -> bool:
         return False
 
 
-def _is_other_header(fields: list[str], header: list[str], decimal: str) -> bool:
-    """A line of names only, sharing a name with the header but not equal to it: a new header."""
-    if fields == header or not any(f in header for f in fields):
+def _is_other_header(fields: list[str], header: list[str], names: set[str], decimal: str) -> bool:
+    """A line of names only, sharing a name with the header (``names``: its set) but not equal to it: a new header."""
+    if fields == header or not any(f in names for f in fields):
         return False
     return all(not _looks_numeric(f, decimal) for f in fields if f)

@@ -6,7 +6,7 @@ source -> RawLine -> parse -> Reading | Quarantined -> monitor -> Finding
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass, field
-from typing import Any
+from typing import Any, NamedTuple
 
 # The keys of the findings record, in order.  Other programs rely on them.
 FINDING_KEYS = (
@@ -24,9 +24,11 @@ FINDING_KEYS = (
 )
 
 
-@dataclass(frozen=True)
-class Reading:
-    """One measured value of one characteristic."""
+class Reading(NamedTuple):
+    """One measured value of one characteristic.
+
+    A named tuple rather than a frozen dataclass: one is made per value read, and a
+    tuple is made about three times faster (immutable all the same)."""
 
     characteristic: str
     value: float

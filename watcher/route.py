@@ -84,6 +84,7 @@ class Route:
 
     def take(self, src: SourceConfig, lines: Iterable[RawLineLike]) -> Batch:
         b = Batch()
+        monitors, touched, values = self.monitors, b.touched, b.values
         for raw in lines:
             p = self.parser(src, raw.path)
             readings, bad = p.parse(raw.data, raw.line_no, raw.offset)
@@ -93,16 +94,22 @@ class Route:
                 b.quarantined.append(bad)
                 counts[1] += 1
                 continue
+            b.readings += len(readings)
             for r in readings:
-                m = self.monitors[r.characteristic]
-                if r.time is not None and m.last_time is not None and _earlier(r.time, m.last_time):
-                    b.backwards.append((r.characteristic, r.time, m.last_time))
-                b.findings.extend(m.feed(r.value, r.time))
-                b.readings += 1
-                b.touched.add(r.characteristic)
-                b.values.setdefault(r.characteristic, []).append((r.value, r.time))
+                name, time = r.characteristic, r.time
+                m = monitors[name]
+                if time is not None and m.last_time is not None and _earlier(time, m.last_time):
+                    b.backwards.append((name, time, m.last_time))
+                found = m.feed(r.value, time)
+                if found:
+                    b.findings.extend(found)
+                touched.add(name)
+                got = values.get(name)
+                if got is None:
+                    got = values[name] = []
+                got.append((r.value, time))
                 if m.notices:
-                    b.notices += [(r.characteristic, text) for text in m.notices]
+                    b.notices += [(name, text) for text in m.notices]
                     m.notices = []
         return b
 
