@@ -45,10 +45,12 @@ afterwards and the Signal list is identical to the streaming one.
 
 from __future__ import annotations
 
+import threading
 from bisect import bisect_left, bisect_right, insort
+from contextlib import contextmanager
 from math import isfinite
 from collections import deque
-from typing import Any, ClassVar
+from typing import Any, ClassVar, Iterator
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
@@ -646,17 +648,56 @@ def _median_summary(a: np.ndarray, w: int, need_runs: bool = True, need_top: boo
     return out
 
 
+class _SummaryMemo(threading.local):
+    table: dict | None = None
+
+
+_MEMO = _SummaryMemo()
+
+
+@contextmanager
+def shared_window_summaries() -> Iterator[None]:
+    """Inside the block, detectors scanning the same series with median windows of the
+    same length share one pass of the compiled window (``longest_median_run`` and
+    ``median_runs`` of the default set summarise the same windows).  A summary is reused
+    only for an equal series (compared value by value), and all are dropped at the end.
+
+    >>> x = np.random.default_rng(1).normal(size=400)
+    >>> with shared_window_summaries():
+    ...     a = LongestMedianRunDetector.scan(x, window=50, alpha=0.05)
+    ...     b = MedianRunsDetector.scan(x, window=50, alpha=0.05)
+    >>> (a, b) == (LongestMedianRunDetector.scan(x, window=50, alpha=0.05),
+    ...            MedianRunsDetector.scan(x, window=50, alpha=0.05))
+    True
+    """
+    outer = _MEMO.table
+    _MEMO.table = {} if outer is None else outer
+    try:
+        yield
+    finally:
+        _MEMO.table = outer
+
+
 def _median_summary_compiled(a: np.ndarray, w: int, need_runs: bool = True, need_top: bool = True):
     """:func:`_median_summary` by the compiled window pushed along ``a`` (O(w) per value
     in C); the columns not needed are zeroed, as the numpy kernel leaves them."""
-    out = np.empty((a.size, 5), dtype=np.int64)
-    _RunWindow(w, 0).scan(np.ascontiguousarray(a, dtype=float), out)
-    cols = out[w - 1 :].T
+    a = np.ascontiguousarray(a, dtype=float)
+    memo = _MEMO.table
+    kept = None if memo is None else memo.get(w)
+    if kept is not None and kept[0].shape == a.shape and np.array_equal(kept[0], a):
+        out = kept[1]
+    else:
+        out = np.empty((a.size, 5), dtype=np.int64)
+        _RunWindow(w, 0).scan(a, out)
+        if memo is not None:
+            memo[w] = (a.copy(), out)
+    cols = list(out[w - 1 :].T)  # views: the kept summary itself is never changed
     if not need_runs:
-        cols[2] = 0
+        cols[2] = np.zeros_like(cols[2])
     if not need_top:
-        cols[3:] = 0
-    return list(cols)
+        cols[3] = np.zeros_like(cols[3])
+        cols[4] = np.zeros_like(cols[4])
+    return cols
 
 
 def _range_max_table(v: np.ndarray, max_span: int) -> np.ndarray:

@@ -203,19 +203,30 @@ def _moments_of(vals: list[float], lsl: float | None, usl: float | None, untimed
 # -- writing (inside the caller's batch transaction) ------------------------------------------
 
 
+def _merge_sql(table: str) -> str:
+    """One statement that adds a bucket's moments to the stored row, or inserts them.
+
+    The update is :meth:`Moments.merge` (stored row first, the new moments second) written
+    in SQL with the same operations in the same order, so the stored figures are the same
+    to the last bit as reading the row, merging and writing it back, without the read.  In
+    an upsert's SET every column names the row's old value."""
+    d = "(excluded.mean - mean)"
+    return (
+        f"INSERT INTO {table} (characteristic, t0, n, mean, m2, vmin, vmax, below, above, untimed)"
+        " VALUES (?,?,?,?,?,?,?,?,?,?) ON CONFLICT (characteristic, t0) DO UPDATE SET"
+        " n = n + excluded.n,"
+        f" mean = mean + {d} * excluded.n / (n + excluded.n),"
+        f" m2 = m2 + (excluded.m2 + {d} * {d} * n * excluded.n / (n + excluded.n)),"
+        " vmin = min(vmin, excluded.vmin), vmax = max(vmax, excluded.vmax),"
+        " below = below + excluded.below, above = above + excluded.above, untimed = untimed + excluded.untimed"
+    )
+
+
+_MERGE_SQL = {t: _merge_sql(t) for t in ("agg_minute", "agg_hour")}
+
+
 def _merge_rows(conn: sqlite3.Connection, table: str, name: str, buckets: Mapping[int, Moments]) -> None:
-    for t0, m in buckets.items():
-        row = conn.execute(
-            f"SELECT n, mean, m2, vmin, vmax, below, above, untimed FROM {table} WHERE characteristic = ? AND t0 = ?",
-            (name, t0),
-        ).fetchone()
-        if row is not None:
-            m = Moments.from_row(row).merge(m)
-        conn.execute(
-            f"INSERT OR REPLACE INTO {table} (characteristic, t0, n, mean, m2, vmin, vmax, below, above, untimed)"
-            " VALUES (?,?,?,?,?,?,?,?,?,?)",
-            (name, t0, *m.row()),
-        )
+    conn.executemany(_MERGE_SQL[table], [(name, t0, *m.row()) for t0, m in buckets.items() if m.n])
 
 
 def _pack(vals: Sequence[float]) -> bytes:
@@ -231,8 +242,9 @@ def _unpack(blob: bytes) -> list[float]:
 def _sample_into(conn: sqlite3.Connection, name: str, t0: int, values: Sequence[float], k: int) -> None:
     row = conn.execute("SELECT seen, vals FROM agg_sample WHERE characteristic = ? AND t0 = ?", (name, t0)).fetchone()
     seen, res = (int(row[0]), _unpack(row[1])) if row else (0, [])
-    # A seed from the bucket and its count so far: the same readings give the same sample on every run.
-    rng = random.Random(f"{name}|{t0}|{seen}")
+    # A seed from the bucket and its count so far: the same readings give the same sample on
+    # every run.  Seeding costs more than the rest, and is only needed once the sample is full.
+    rng = random.Random(f"{name}|{t0}|{seen}") if len(res) + len(values) > k else None
     for x in values:
         seen += 1
         if len(res) < k:

@@ -33,13 +33,16 @@ from watcher.store import Store, utc_now
 MAX_BYTES_PER_FILE = 1 << 20  # read at most this much of one file per pass, so one file cannot starve others
 HOUSEKEEPING = 1.0  # seconds between housekeeping passes when nothing happens
 # After a wake-up, wait before the pass, so that appends arriving across many files (one
-# file-system event per line) are taken in one pass, one commit per source, instead of one
-# pass and one commit per line.  The wait is twice what the last pass took, within
+# file-system event per line) are taken in one pass and one commit instead of one pass and
+# one commit per line.  The wait is four times what the last pass took, within
 # [GATHER_MIN, GATHER_MAX] seconds: a small site gets its readings within 50 ms, while on
 # a large one the costs paid per characteristic and commit (saved state, digest
-# aggregates) are spread over more readings and the passes take at most about a third of
-# the time.  Costs at most GATHER_MAX of latency.
-GATHER_MIN, GATHER_MAX, GATHER_FACTOR = 0.05, 1.0, 2.0
+# aggregates) are spread over more readings: the passes take about a fifth of one core
+# while a pass lasts under GATHER_MAX / GATHER_FACTOR, and a busier site waits longer
+# instead of working harder (bench/bench_plant.py: 1,000 characteristics at 10 readings/s
+# each, about 0.7 s from a line's write to its detectors).  Costs at most GATHER_MAX of
+# latency.
+GATHER_MIN, GATHER_MAX, GATHER_FACTOR = 0.05, 1.0, 4.0
 LOCK_NAME = "linewatch.lock"
 
 
@@ -108,11 +111,17 @@ class _Feed:
     bad_seen: set[tuple[str, str]] = field(default_factory=set)
     bad_counts: Counter = field(default_factory=Counter)
 
+    #: True when the last read of a file stopped at the per-pass limit (a backlog is left)
+    capped: bool = False
+
     def read(self) -> tuple[list[Any], list[Any]]:
         """(raw lines, follow events) available now."""
         if self.kind == "file":
             lines, events = [], []
+            self.capped = False
             for _f, ls, evs in self.reader.read_available(MAX_BYTES_PER_FILE):
+                if ls and ls[-1].end_offset - ls[0].offset >= MAX_BYTES_PER_FILE // 2:
+                    self.capped = True
                 lines.extend(ls)
                 events.extend(evs)
             return lines, events
@@ -280,17 +289,34 @@ class Daemon:
 
     # -- one pass -------------------------------------------------------------------------------
     def _pass(self) -> None:
-        """Read everything available now, in bounded batches, committing each."""
+        """Read what is available now, in bounded batches, committing each.
+
+        Goes round the sources again only while a file is left with a backlog (a read
+        stopped at MAX_BYTES_PER_FILE): lines that arrive during the pass wait for the next
+        one, after the gathering wait, or a steady stream of appends would keep the pass
+        going for ever and the gathering (see GATHER_MIN) would never happen."""
+        assert self.store is not None
         while True:
             more = False
-            for feed in self.feeds:
-                lines, events = feed.read()
-                for ev in events:
-                    self._log_follow_event(feed.cfg.name, ev)
-                if not lines and not events:
-                    continue
-                self._commit(feed, lines)
-                more = more or bool(lines)
+            taken: list[tuple[_Feed, Batch]] = []
+            # One transaction for the whole round: a commit per source would cost more than
+            # the readings themselves on a site with many files.  Lines are read inside it, so
+            # a crash anywhere in the round leaves every offset where its state was saved.
+            with self.store.transaction() as c:
+                for feed in self.feeds:
+                    lines, events = feed.read()
+                    for ev in events:
+                        self._log_follow_event(feed.cfg.name, ev)
+                    if not lines and not events:
+                        continue
+                    taken.append((feed, self._take(c, feed, lines)))
+                    more = more or feed.capped
+            if taken:
+                self.store.sync_jsonl()
+            for feed, batch in taken:
+                self._log_batch(feed, batch)
+                if self.on_findings is not None and batch.findings:
+                    self.on_findings(batch.findings)
             self._apply_commands()
             for hook in self.hooks:
                 if hasattr(hook, "tick"):
@@ -298,38 +324,36 @@ class Daemon:
             if not more or self.stop_event.is_set():
                 return
 
-    def _commit(self, feed: _Feed, lines: list[Any]) -> None:
+    def _take(self, c: Any, feed: _Feed, lines: list[Any]) -> Batch:
+        """Route one source's lines and write what they changed, inside the round's transaction."""
         import json
 
         assert self.route is not None and self.store is not None
         batch = self.route.take(feed.cfg, lines)
         self.readings += batch.readings
         store = self.store
-        with store.transaction() as c:
-            store.add_findings(c, batch.findings)
-            store.add_quarantined(c, batch.quarantined)
-            for name in batch.touched:
-                m = self.route.monitors[name]
-                store.save_characteristic(c, name, m.source, m.export_state(), m.count, m.last_time, m.last_value)
-            if feed.kind == "file":
-                ck = feed.reader.checkpoints()
-                store.set_meta(c, f"source:{feed.cfg.name}", json.dumps(ck))
-                files = ck.get("files", {})
-                for path, (n, q) in batch.per_file.items():
-                    store.save_file(c, feed.cfg.name, path, files.get(path, {"path": path}), n, q)
-                headers = {p: parser.header for (s, p), parser in self.route.parsers.items()
-                           if s == feed.cfg.name and parser.header is not None}
-                store.set_meta(c, f"headers:{feed.cfg.name}", json.dumps(headers))
-            else:
-                for path, (n, q) in batch.per_file.items():
-                    store.save_file(c, feed.cfg.name, path, {"path": path}, n, q)
-            for hook in self.hooks:
-                if hasattr(hook, "on_batch"):
-                    hook.on_batch(c, batch)
-        store.sync_jsonl()
-        self._log_batch(feed, batch)
-        if self.on_findings is not None and batch.findings:
-            self.on_findings(batch.findings)
+        store.add_findings(c, batch.findings)
+        store.add_quarantined(c, batch.quarantined)
+        for name in batch.touched:
+            m = self.route.monitors[name]
+            store.save_characteristic(c, name, m.source, m.export_state_text(), m.count, m.last_time, m.last_value)
+        if feed.kind == "file":
+            ck = feed.reader.checkpoints()
+            store.set_meta(c, f"source:{feed.cfg.name}", json.dumps(ck))
+            files = ck.get("files", {})
+            for path, (n, q) in batch.per_file.items():
+                store.save_file(c, feed.cfg.name, path, files.get(path, {"path": path}), n, q)
+            headers = {p: parser.header for (s, p), parser in self.route.parsers.items()
+                       if s == feed.cfg.name and parser.header is not None}
+            store.set_meta(c, f"headers:{feed.cfg.name}", json.dumps(headers))
+        else:
+            for path, (n, q) in batch.per_file.items():
+                store.save_file(c, feed.cfg.name, path, {"path": path}, n, q)
+        for hook in self.hooks:
+            if hasattr(hook, "on_batch"):
+                hook.on_batch(c, batch)
+        batch.values = {}  # only the hooks need the readings; the round keeps the rest for its log
+        return batch
 
     def _apply_commands(self) -> None:
         """Requests left by other commands (``linewatch rebaseline``), at most every half second."""
@@ -345,7 +369,7 @@ class Daemon:
                 m = self.route.monitors.get(r["subject"])
                 if r["kind"] == "rebaseline" and m is not None:
                     m.rebaseline()
-                    store.save_characteristic(c, m.cc.name, m.source, m.export_state(), m.count, m.last_time, m.last_value)
+                    store.save_characteristic(c, m.cc.name, m.source, m.export_state_text(), m.count, m.last_time, m.last_value)
                     for hook in self.hooks:
                         if hasattr(hook, "on_rebaseline"):
                             hook.on_rebaseline(c, m.cc.name, r["note"] or "")

@@ -8,6 +8,7 @@ the same transaction as the file offsets that produced it.
 from __future__ import annotations
 
 import base64
+import json
 import math
 from array import array
 from collections import deque
@@ -16,6 +17,7 @@ from typing import Any
 import numpy as np
 
 from rules import DETECTORS, StreamDetector
+from rules.runs_stream import shared_window_summaries
 from watcher.config import CharacteristicConfig
 from watcher.detector_set import resolve_detectors
 from watcher.messages import finding_message
@@ -34,7 +36,32 @@ def _unpack(text: str) -> list[float]:
     return a.tolist()
 
 
+# one encoder for every save: json.dumps with separators builds a new one per call
+_compact_json = json.JSONEncoder(separators=(",", ":")).encode
+
+
+def _pack_times(times: Any) -> str | list[str | None]:
+    """Time stamps as one text, separated by spaces, ``-`` for none: one string encodes far
+    faster than a list of hundreds.  A parsed time (ISO 8601 with a ``T``) holds no space
+    and is never ``-``; should one hold a space, the list is kept as it is."""
+    text = " ".join("-" if t is None else t for t in times)
+    if text.count(" ") != max(0, len(times) - 1):
+        return list(times)
+    return text
+
+
+def _unpack_times(packed: str | list[str | None]) -> list[str | None]:
+    if isinstance(packed, list):  # unpacked (or saved before times were packed)
+        return packed
+    return [None if t == "-" else t for t in packed.split(" ")] if packed else []
+
+
 PACKED = "f64"  # a detector state's list of floats, stored packed: {"f64": base64 of the doubles}
+
+
+def _all_floats(v: list) -> bool:
+    # the types of a list as a set: one pass in C instead of a generator over the values
+    return set(map(type, v)) == {float}
 
 
 def _pack_detector(data: dict[str, Any]) -> dict[str, Any]:
@@ -45,8 +72,7 @@ def _pack_detector(data: dict[str, Any]) -> dict[str, Any]:
     st = data.get("state")
     if not isinstance(st, dict):
         return data
-    packed = {k: {PACKED: _pack(v)} if isinstance(v, list) and v and all(type(x) is float for x in v) else v
-              for k, v in st.items()}
+    packed = {k: {PACKED: _pack(v)} if type(v) is list and v and _all_floats(v) else v for k, v in st.items()}
     return {**data, "state": packed}
 
 
@@ -76,6 +102,7 @@ class Monitor:
         self.calibrator = None if detectors is not None else calibrator
         self.calibration: Any = None  # watcher.calibration.Calibrated, once calibrated
         self.measured_per_hour: float | None = None
+        self._head_text: tuple[tuple, str] | None = None  # see export_state_text
         self.count = 0
         self.baseline: Any = None  # a rules.baseline.Baseline once learnt
         self.baseline_values: list[float] = []
@@ -171,13 +198,14 @@ class Monitor:
                 rest = np.asarray([sum(g) / k for g in rest[: len(rest) // k * k].reshape(-1, k).tolist()])
             fed_raw = np.asarray([self._transformed(v) for v in rest.tolist()]) if self._lambda is not None else rest
             fed_z = (fed_raw - self.baseline.centre) / self.baseline.sigma
-            for rank, (key, det) in enumerate(self.detectors.items()):
-                feed = fed_z if det.needs_reference else fed_raw
-                for sig in type(det).scan(feed, **det.params()):
-                    i = start + sig.index * k + k - 1
-                    hist.now = i
-                    f = self._finding(key, sig, i, float(x[i]), None if times is None else times[i], hist)
-                    ranked.append((i, rank, f))
+            with shared_window_summaries():
+                for rank, (key, det) in enumerate(self.detectors.items()):
+                    feed = fed_z if det.needs_reference else fed_raw
+                    for sig in type(det).scan(feed, **det.params()):
+                        i = start + sig.index * k + k - 1
+                        hist.now = i
+                        f = self._finding(key, sig, i, float(x[i]), None if times is None else times[i], hist)
+                        ranked.append((i, rank, f))
         if n:
             self.last_value = float(x[-1])
             self.last_time = None if times is None else times[-1]
@@ -351,22 +379,40 @@ class Monitor:
 
     # -- state -------------------------------------------------------------------------------------
     def export_state(self) -> dict[str, Any]:
+        return {**self._state_head(), **self._state_tail()}
+
+    def export_state_text(self) -> str:
+        """``export_state()`` as compact JSON, the part that changes only with the baseline
+        (baseline, calibration, raw centre and sigma) encoded once and kept: the daemon
+        saves every characteristic that took readings on every commit."""
+        key = (self.baseline, self.calibration, self.watch_start, self.measured_per_hour,
+               self.raw_centre, self.raw_sigma)
+        kept = self._head_text
+        if kept is None or len(kept[0]) != len(key) or any(a is not b for a, b in zip(kept[0], key)):
+            kept = self._head_text = (key, _compact_json(self._state_head())[:-1])
+        return kept[1] + "," + _compact_json(self._state_tail())[1:]
+
+    def _state_head(self) -> dict[str, Any]:
         return {
             "version": STATE_VERSION,
-            "count": self.count,
             "watch_start": self.watch_start,
             "baseline": None if self.baseline is None else self.baseline.to_dict(),
             "raw_centre": self.raw_centre,
             "raw_sigma": self.raw_sigma,
+            "measured_per_hour": self.measured_per_hour,
+            "calibration": None if self.calibration is None else self.calibration.summary(),
+        }
+
+    def _state_tail(self) -> dict[str, Any]:
+        return {
+            "count": self.count,
             "baseline_values": _pack(self.baseline_values),
             "group": self.group,
             "detectors": {k: _pack_detector(d.export_state()) for k, d in self.detectors.items()},
             "recent_values": _pack(list(self.recent_values)),
-            "recent_times": list(self.recent_times),
+            "recent_times": _pack_times(self.recent_times),
             "last_time": self.last_time,
             "last_value": self.last_value,
-            "measured_per_hour": self.measured_per_hour,
-            "calibration": None if self.calibration is None else self.calibration.summary(),
         }
 
     @classmethod
@@ -381,7 +427,7 @@ class Monitor:
         m.baseline_values = _unpack(state["baseline_values"])
         m.group = list(state["group"])
         m.recent_values.extend(_unpack(state["recent_values"]))
-        m.recent_times.extend(state["recent_times"])
+        m.recent_times.extend(_unpack_times(state["recent_times"]))
         m.last_time, m.last_value = state["last_time"], state["last_value"]
         if state["baseline"] is not None:
             m.baseline = Baseline.from_dict(state["baseline"])

@@ -68,6 +68,7 @@ from typing import Any, Callable, TextIO
 import numpy as np
 
 from rules.detector import StreamDetector
+from rules.runs_stream import shared_window_summaries
 from watcher.config import Config, SourceConfig
 from watcher.monitor import Monitor
 from watcher.parse import Column, LineParser, parse_time, to_float
@@ -262,8 +263,9 @@ class SeriesScan:
             for ref, new in ((False, raw), (True, z)):
                 old = self.fed.get(ref)
                 self.fed[ref] = new if old is None else np.concatenate([old, new])
-        for tr in self.tracks:
-            self._scan(tr, e1, final)
+        with shared_window_summaries():  # detectors with the same median window share its pass
+            for tr in self.tracks:
+                self._scan(tr, e1, final)
         self._trim(e1)
 
     def _keep(self, i: int, rank: int, f: Finding, line: int) -> None:

@@ -182,13 +182,15 @@ class Store:
         )
 
     @staticmethod
-    def save_characteristic(c: sqlite3.Connection, name: str, source: str, state: dict, readings: int,
+    def save_characteristic(c: sqlite3.Connection, name: str, source: str, state: dict | str, readings: int,
                             last_time: str | None, last_value: float | None) -> None:
+        """``state``: a monitor's exported state, or the same already encoded as JSON text."""
         c.execute(
             "INSERT INTO characteristic_state VALUES (?,?,?,?,?,?,?) ON CONFLICT(characteristic) DO UPDATE SET"
             " source = excluded.source, state = excluded.state, readings = excluded.readings,"
             " last_time = excluded.last_time, last_value = excluded.last_value, updated_at = excluded.updated_at",
-            (name, source, json.dumps(state, separators=(",", ":")), readings, last_time, last_value, utc_now()),
+            (name, source, state if isinstance(state, str) else json.dumps(state, separators=(",", ":")),
+             readings, last_time, last_value, utc_now()),
         )
 
     @staticmethod

@@ -246,6 +246,27 @@ def test_stream_equals_scan_long_random(numpy_kernel):
             assert all(isinstance(s, Signal) for s in got)
 
 
+def test_shared_window_summaries_change_no_signal():
+    """Detectors sharing one median-window pass inside ``shared_window_summaries`` give the
+    signals each gives alone (and the streaming loop gives), also when the same array is
+    changed in place between two scans: a summary is reused for equal values only."""
+    from rules.runs_stream import shared_window_summaries
+
+    rng = np.random.default_rng(77)
+    x = np.round(rng.normal(size=2500) + (np.arange(2500) > 1200) * 0.8, 1)
+    pair = (LongestMedianRunDetector, MedianRunsDetector)
+    want = [stream(cls(window=30, alpha=0.01), x) for cls in pair]
+    y = x.copy()
+    with shared_window_summaries():
+        got = [cls.scan(y, window=30, alpha=0.01) for cls in pair]
+        y[:] = x[::-1]  # the same array object, other values
+        got_reversed = [cls.scan(y, window=30, alpha=0.01) for cls in pair]
+        got_short = [cls.scan(x[:900], window=30, alpha=0.01) for cls in pair]
+    assert got == want and any(got)
+    assert got_reversed == [stream(cls(window=30, alpha=0.01), x[::-1]) for cls in pair]
+    assert got_short == [stream(cls(window=30, alpha=0.01), x[:900]) for cls in pair]
+
+
 # -- state ------------------------------------------------------------------------------
 
 

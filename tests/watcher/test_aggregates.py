@@ -74,6 +74,31 @@ def test_merge_keeps_precision_with_a_large_offset():
     assert m.sd == pytest.approx(x.std(ddof=1), rel=1e-6)
 
 
+def test_stored_merge_is_the_python_merge_to_the_last_bit():
+    """The upsert adds a batch's moments in SQL; the stored row must equal Moments.merge
+    (Chan, Golub & LeVeque 1983 pairwise update) of the same pieces, bit for bit."""
+    rng = np.random.default_rng(21)
+    c = _conn()
+    expected: dict[int, agg.Moments] = {}
+    for _ in range(200):
+        k = int(rng.integers(1, 40))
+        secs = np.sort(rng.uniform(0, 3 * 60, k))
+        x = 10.0 + rng.normal(0, 0.01, k) * rng.choice([1, 1e3])  # some wide pieces, some narrow
+        items = [(float(v), (T0 + timedelta(seconds=float(s))).isoformat()) for v, s in zip(x, secs)]
+        agg.record_values(c, {"torque": items}, T0.isoformat(), limits={"torque": (9.99, 10.01)})
+        by_minute: dict[int, list[float]] = {}
+        for v, s in zip(x.tolist(), secs.tolist()):
+            by_minute.setdefault(int((T0.timestamp() + s) // 60) * 60, []).append(v)
+        for t0, vals in by_minute.items():
+            piece = agg._moments_of(vals, 9.99, 10.01, 0)
+            expected[t0] = piece if t0 not in expected else expected[t0].merge(piece)
+    rows = {r[0]: r[1:] for r in c.execute(
+        "SELECT t0, n, mean, m2, vmin, vmax, below, above, untimed FROM agg_minute WHERE characteristic = 'torque'")}
+    assert set(rows) == set(expected)
+    for t0, m in expected.items():
+        assert rows[t0] == m.row()  # exact equality: the same operations in the same order
+
+
 def test_storage_grows_with_time_not_with_readings():
     c = _conn()
     rng = np.random.default_rng(5)
