@@ -64,16 +64,19 @@ def _all_floats(v: list) -> bool:
     return set(map(type, v)) == {float}
 
 
-def _pack_detector(data: dict[str, Any]) -> dict[str, Any]:
-    """A detector's exported state with its lists of floats (its window) packed.
+def _pack_state(st: Any) -> Any:
+    """A detector's ``state`` with its lists of floats (its window) packed.
 
     Writing floats as JSON text (17 significant digits each) was most of the cost of saving
     a characteristic, which the daemon does on every commit; the packed form is exact too."""
-    st = data.get("state")
     if not isinstance(st, dict):
-        return data
-    packed = {k: {PACKED: _pack(v)} if type(v) is list and v and _all_floats(v) else v for k, v in st.items()}
-    return {**data, "state": packed}
+        return st
+    return {k: {PACKED: _pack(v)} if type(v) is list and v and _all_floats(v) else v for k, v in st.items()}
+
+
+def _pack_detector(data: dict[str, Any]) -> dict[str, Any]:
+    """A detector's exported state with its state packed (:func:`_pack_state`)."""
+    return {**data, "state": _pack_state(data.get("state"))}
 
 
 def _unpack_detector(data: dict[str, Any]) -> dict[str, Any]:
@@ -103,6 +106,7 @@ class Monitor:
         self.calibration: Any = None  # watcher.calibration.Calibrated, once calibrated
         self.measured_per_hour: float | None = None
         self._head_text: tuple[tuple, str] | None = None  # see export_state_text
+        self._detector_heads: dict[str, tuple[StreamDetector, str]] = {}
         self.count = 0
         self.baseline: Any = None  # a rules.baseline.Baseline once learnt
         self.baseline_values: list[float] = []
@@ -382,15 +386,28 @@ class Monitor:
         return {**self._state_head(), **self._state_tail()}
 
     def export_state_text(self) -> str:
-        """``export_state()`` as compact JSON, the part that changes only with the baseline
-        (baseline, calibration, raw centre and sigma) encoded once and kept: the daemon
-        saves every characteristic that took readings on every commit."""
+        """``export_state()`` as compact JSON, for the daemon, which saves every characteristic
+        that took readings on every commit: what changes only with the baseline (baseline,
+        calibration, raw centre and sigma) and each detector's name and settings are encoded
+        once and kept, so only the moving parts are encoded each time."""
         key = (self.baseline, self.calibration, self.watch_start, self.measured_per_hour,
                self.raw_centre, self.raw_sigma)
         kept = self._head_text
         if kept is None or len(kept[0]) != len(key) or any(a is not b for a, b in zip(kept[0], key)):
             kept = self._head_text = (key, _compact_json(self._state_head())[:-1])
-        return kept[1] + "," + _compact_json(self._state_tail())[1:]
+        tail = self._state_tail(with_detectors=False)
+        return f'{kept[1]},"detectors":{self._detectors_text()},{_compact_json(tail)[1:]}'
+
+    def _detectors_text(self) -> str:
+        heads = self._detector_heads
+        parts = []
+        for k, d in self.detectors.items():
+            got = heads.get(k)
+            if got is None or got[0] is not d:  # a detector's settings are fixed when it is made
+                head = {"detector": d.key, "version": d.STATE_VERSION, "params": d.params()}
+                got = heads[k] = (d, f'{_compact_json(k)}:{_compact_json(head)[:-1]},"state":')
+            parts.append(got[1] + _compact_json(_pack_state(d._get_state())) + "}")
+        return "{" + ",".join(parts) + "}"
 
     def _state_head(self) -> dict[str, Any]:
         return {
@@ -403,17 +420,19 @@ class Monitor:
             "calibration": None if self.calibration is None else self.calibration.summary(),
         }
 
-    def _state_tail(self) -> dict[str, Any]:
-        return {
+    def _state_tail(self, with_detectors: bool = True) -> dict[str, Any]:
+        tail = {
             "count": self.count,
             "baseline_values": _pack(self.baseline_values),
             "group": self.group,
-            "detectors": {k: _pack_detector(d.export_state()) for k, d in self.detectors.items()},
             "recent_values": _pack(list(self.recent_values)),
             "recent_times": _pack_times(self.recent_times),
             "last_time": self.last_time,
             "last_value": self.last_value,
         }
+        if with_detectors:
+            tail["detectors"] = {k: _pack_detector(d.export_state()) for k, d in self.detectors.items()}
+        return tail
 
     @classmethod
     def from_state(cls, cc: CharacteristicConfig, source: str, state: dict[str, Any],

@@ -123,6 +123,55 @@ def test_appends_rotation_partial_lines_new_files_and_bad_lines(tmp_path, poll):
     assert st["sources"]["cw"]["files"][str(tmp_path / "data" / "cw-2.csv")]["offset"] > 0
 
 
+class _RoundCounter:
+    """Daemon hook: rounds of each pass (``tick`` ends a round) and readings after each pass;
+    it can also append a line to a file whenever a batch was taken, as a writer that always
+    has one more line ready by the time the daemon looks again."""
+
+    def __init__(self, daemon, path: Path | None = None, appends: int = 0):
+        self.path, self.appends, self.rounds, self.passes = path, appends, 0, []
+        self.daemon = daemon
+        inner = daemon._pass
+
+        def counted() -> None:
+            before = self.rounds
+            inner()
+            self.passes.append((self.rounds - before, daemon.readings))
+
+        daemon._pass = counted
+
+    def on_batch(self, conn, batch) -> None:
+        if self.appends and batch.readings:
+            self.appends -= 1
+            append(self.path, f"{1767400000 + self.appends},{500.0 + self.appends % 3:.1f},late\n")
+
+    def tick(self, daemon) -> None:
+        self.rounds += 1
+
+
+def test_a_backlog_is_taken_in_one_pass_but_a_pass_never_chases_new_lines(tmp_path):
+    """A file with a backlog beyond one round's read limit is taken whole by one pass; lines
+    arriving while a pass runs wait for the next pass (after the gathering wait), or a
+    steady writer would keep the daemon in one pass, busy, for as long as it writes."""
+    cfgp = make_config(tmp_path)
+    f1 = tmp_path / "data" / "cw-1.csv"
+    backlog = 24_000  # lines of some 125 bytes (a long note column): three rounds of MAX_BYTES_PER_FILE
+    note = "x" * 100
+    f1.write_text("time,mass_g,note\n" + "".join(
+        f"{1767337200 + 2 * i},{500.0 + (i % 7) * 0.1:.3f},{note}\n" for i in range(backlog)))
+    r = Running(cfgp)
+    counter = _RoundCounter(r.daemon, f1, appends=40)
+    r.daemon.hooks.append(counter)
+    with r:
+        r.wait_for(backlog + 40, timeout=60)
+    first = next(i for i, (_, n) in enumerate(counter.passes) if n)
+    rounds, taken = counter.passes[first]
+    assert taken >= backlog and rounds >= 3  # the backlog in one pass, round after round
+    later = [(k, n - m) for (k, n), (_, m) in zip(counter.passes[first + 1:], counter.passes[first:])]
+    assert len([1 for _, got in later if got]) >= 30  # each new line came in a pass of its own ...
+    assert max(rounds for rounds, _ in later) == 1  # ... of one round: the pass did not chase it
+
+
 def test_truncated_file_is_read_again(tmp_path):
     cfgp = make_config(tmp_path)
     f1 = tmp_path / "data" / "cw-1.csv"
