@@ -47,6 +47,7 @@ source).  Detectors calibrated on the baseline carry the remaining error.
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import asdict, dataclass, field, fields
 from typing import Any
 
@@ -286,7 +287,11 @@ def _fit_boxcox_screened(a: np.ndarray, keep: np.ndarray, cut: float, alpha: flo
     """
     k_fit = keep
     try:
-        with np.errstate(all="ignore"):
+        # scipy warns when its exponent had to be held back from overflowing (a spread tiny
+        # beside the level, e.g. 500 +- 1); such an exponent is far past _MAX_ABS_LAMBDA and
+        # refused below, so the warning would only reach the daemon's output as noise
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message="The optimal lambda is", category=UserWarning)
             for _ in range(5):
                 lam = boxcox_normalise(a[k_fit], alpha=alpha).lmbda
                 if not abs(lam) <= _MAX_ABS_LAMBDA:

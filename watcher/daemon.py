@@ -289,7 +289,7 @@ class Daemon:
 
     # -- one pass -------------------------------------------------------------------------------
     def _pass(self) -> None:
-        """Read what is available now, in bounded batches, committing each.
+        """Read what is available now, in bounded batches, one transaction per round.
 
         Goes round the sources again only while a file is left with a backlog (a read
         stopped at MAX_BYTES_PER_FILE): lines that arrive during the pass wait for the next
