@@ -77,10 +77,14 @@ def test_sources_in_one_directory_share_one_watch_and_wake_only_their_own(tmp_pa
         assert threading.active_count() == threads_with_one  # the second source adds no thread
         for src in (sa, sb):
             src.poll_ready()
+        seen_by_b = []
+        inner = sb._on_fs_event
+        sb._on_fs_event = lambda event: (seen_by_b.append(event), inner(event))
         with open(a, "ab") as fh:
             fh.write(b"1,2.5\n")
         assert sa.wait(3.0) is True
         assert sb.wait(0.3) is False  # the neighbour's append does not wake this source
+        assert seen_by_b == []  # nor is it handed to it: the watch's handler knows whose file it is
         assert [ln.data for ln in collect(sa, 1)] == [b"1,2.5"]
         sa.stop()
         sb.poll_ready()
@@ -92,6 +96,37 @@ def test_sources_in_one_directory_share_one_watch_and_wake_only_their_own(tmp_pa
         sa.stop()
         sb.stop()
     assert sb._watch not in gs_mod._SHARED._users  # the last one unscheduled it
+
+
+def test_a_single_file_source_and_a_glob_in_one_directory_each_get_their_own_events(tmp_path):
+    """The watch's one handler sends an event on a single-file source's file to that source
+    (and to the globbing ones, which judge for themselves) and any other event to all: the
+    glob still sees its new files, the single-file source only its own appends."""
+    one = tmp_path / "scale.csv"
+    one.write_bytes(b"")
+    (tmp_path / "shift-1.csv").write_bytes(b"")
+    single = GlobSource("scale", str(one), poll="never", housekeeping=5.0)
+    globbing = GlobSource("shifts", str(tmp_path / "shift-*.csv"), poll="never", housekeeping=5.0)
+    single.start()
+    globbing.start()
+    try:
+        assert single._watch == globbing._watch
+        for src in (single, globbing):
+            src.poll_ready()
+        (tmp_path / "shift-2.csv").write_bytes(b"s2\n")  # a new file: the glob is told
+        assert globbing.wait(3.0) is True
+        assert [ln.data for ln in collect(globbing, 1)] == [b"s2"]
+        assert single.wait(0.3) is False  # the glob's new file is not the single source's business
+        globbing.poll_ready()
+        with open(one, "ab") as fh:
+            fh.write(b"12.5\n")
+        assert single.wait(3.0) is True
+        assert [ln.data for ln in collect(single, 1)] == [b"12.5"]
+        assert globbing.wait(0.3) is False  # woken, it found nothing of its own: no change flagged
+    finally:
+        single.stop()
+        globbing.stop()
+    assert single._watch not in gs_mod._SHARED._users
 
 
 def test_a_failing_source_handler_does_not_stop_the_shared_observer(tmp_path):
