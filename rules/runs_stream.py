@@ -67,7 +67,7 @@ try:  # the compiled windows (rules/_windows.c); the pure-Python ones below are 
     from rules._windows import MAX_W as _C_MAX_W, RunWindow as _RunWindow
 except ImportError:  # not built (no compiler at install): the Python windows do the same, slower
     _RunWindow, _C_MAX_W = None, 0
-# Up to this window the compiled window (O(w) per reading in C) is used; beyond it the
+# Up to this window the compiled window (O(w) per reading in C, less up to 64) is used; beyond it the
 # incremental Python ledger (O(log w) plus local walks) is cheaper.
 _COMPILED_MAX_W = min(512, _C_MAX_W)
 # (detector key, alpha, side) -> {counts: critical values}; shared by all instances
@@ -679,8 +679,9 @@ def shared_window_summaries() -> Iterator[None]:
 
 
 def _median_summary_compiled(a: np.ndarray, w: int, need_runs: bool = True, need_top: bool = True):
-    """:func:`_median_summary` by the compiled window pushed along ``a`` (O(w) per value
-    in C); the columns not needed are zeroed, as the numpy kernel leaves them."""
+    """:func:`_median_summary` by the compiled window pushed along ``a`` (in C: O(w) per
+    value, much less for windows up to 64); the columns not needed are zeroed, as the numpy
+    kernel leaves them."""
     a = np.ascontiguousarray(a, dtype=float)
     memo = _MEMO.table
     kept = None if memo is None else memo.get(w)

@@ -79,9 +79,11 @@ from tests.rules.compiled import compiled, needs_compiled, python_only
 @needs_compiled
 @settings(max_examples=80, deadline=None)
 @given(data=st.lists(st.integers(-3, 3), min_size=0, max_size=200), scale=st.sampled_from([1.0, 0.5, -0.0]),
-       w=st.integers(2, 40), kind=st.sampled_from([0, 1]), zeros=st.booleans())
+       w=st.integers(2, 70), kind=st.sampled_from([0, 1]), zeros=st.booleans())
 def test_compiled_window_equals_python_window(data, scale, w, kind, zeros):
-    """Same summary on every reading, same labels and values, with many ties (and signed zeros)."""
+    """Same summary on every reading, same labels and values, with many ties (and signed zeros).
+    Windows up to 64 keep their median labels as bit masks, wider ones relabel on every push:
+    both are drawn."""
     x = np.cumsum(np.array(data, dtype=float)) * scale
     if zeros:
         x[::3] = -0.0
@@ -92,6 +94,34 @@ def test_compiled_window_equals_python_window(data, scale, w, kind, zeros):
         assert c.full() == py.full() and c.values() == py.values()
         if py.full():
             assert c.labels() == py.labels()
+
+
+@needs_compiled
+@pytest.mark.parametrize("w", [49, 50, 63, 64, 65])
+def test_compiled_median_window_equals_python_on_long_streams(w):
+    """Thousands of pushes through the bit-mask labels (w <= 64) and the relabelling path
+    (w = 65): continuous readings, readings on a coarse grid (many values equal to the
+    median) and a step, each push's summary as the Python window gives it."""
+    rng = np.random.default_rng(w)
+    for x in (rng.normal(size=3000), np.round(rng.normal(size=3000) * 2) / 2,
+              np.r_[rng.normal(size=1500), rng.normal(size=1500) + 2.0]):
+        c = compiled.RunWindow(w, 0)
+        py = _MedianWindow(w, _RunLedger)
+        assert [c.push(v) for v in x.tolist()] == [py.push(v) for v in x.tolist()]
+
+
+@needs_compiled
+def test_compiled_window_refuses_nan():
+    """A NaN has no side of a median and would break the sorted copy: refused, window unchanged."""
+    c = compiled.RunWindow(5, 0)
+    for v in (1.0, 2.0, 3.0):
+        c.push(v)
+    with pytest.raises(ValueError, match="NaN"):
+        c.push(float("nan"))
+    out = np.empty((3, 5), dtype=np.int64)
+    with pytest.raises(ValueError, match="NaN"):
+        c.scan(np.array([4.0, float("nan"), 5.0]), out)
+    assert c.values() == [1.0, 2.0, 3.0]
 
 
 @needs_compiled
