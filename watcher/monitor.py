@@ -383,7 +383,8 @@ class Monitor:
 
     # -- state -------------------------------------------------------------------------------------
     def export_state(self) -> dict[str, Any]:
-        return {**self._state_head(), **self._state_tail()}
+        detectors = {k: _pack_detector(d.export_state()) for k, d in self.detectors.items()}
+        return {**self._state_head(), **self._state_tail(), "detectors": detectors}
 
     def export_state_text(self) -> str:
         """``export_state()`` as compact JSON, for the daemon, which saves every characteristic
@@ -393,10 +394,9 @@ class Monitor:
         key = (self.baseline, self.calibration, self.watch_start, self.measured_per_hour,
                self.raw_centre, self.raw_sigma)
         kept = self._head_text
-        if kept is None or len(kept[0]) != len(key) or any(a is not b for a, b in zip(kept[0], key)):
+        if kept is None or any(a is not b for a, b in zip(kept[0], key)):
             kept = self._head_text = (key, _compact_json(self._state_head())[:-1])
-        tail = self._state_tail(with_detectors=False)
-        return f'{kept[1]},"detectors":{self._detectors_text()},{_compact_json(tail)[1:]}'
+        return f'{kept[1]},"detectors":{self._detectors_text()},{_compact_json(self._state_tail())[1:]}'
 
     def _detectors_text(self) -> str:
         heads = self._detector_heads
@@ -420,8 +420,9 @@ class Monitor:
             "calibration": None if self.calibration is None else self.calibration.summary(),
         }
 
-    def _state_tail(self, with_detectors: bool = True) -> dict[str, Any]:
-        tail = {
+    def _state_tail(self) -> dict[str, Any]:
+        """The moving parts of the state, the detectors' apart."""
+        return {
             "count": self.count,
             "baseline_values": _pack(self.baseline_values),
             "group": self.group,
@@ -430,9 +431,6 @@ class Monitor:
             "last_time": self.last_time,
             "last_value": self.last_value,
         }
-        if with_detectors:
-            tail["detectors"] = {k: _pack_detector(d.export_state()) for k, d in self.detectors.items()}
-        return tail
 
     @classmethod
     def from_state(cls, cc: CharacteristicConfig, source: str, state: dict[str, Any],

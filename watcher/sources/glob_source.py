@@ -197,8 +197,6 @@ class _DirectoryWake(FileSystemEventHandler):
         self.sources = sources
 
     def on_any_event(self, event: FileSystemEvent) -> None:
-        if event.event_type in IGNORED_EVENT_TYPES:
-            return
         exact = self.exact
         hit = exact.get(os.fsdecode(event.src_path))
         dest = getattr(event, "dest_path", "")
